@@ -1,0 +1,51 @@
+"""atomq: submit atomistic calculations to your lab's queue and get ASE objects back.
+
+Units throughout are ASE's: Angstrom, eV, eV/Angstrom, eV/Angstrom^3, K; MD
+time steps are given in fs. Simulated numbers need validation before any
+engineering or safety decision.
+"""
+
+from atomq.client import Client, Job
+from atomq.errors import (
+    AtomqError,
+    AuthenticationFailed,
+    ConfigurationError,
+    InvalidRequest,
+    JobFailed,
+    NotFound,
+    ServerError,
+)
+from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
+from atomq.results import Provenance, RelaxResult, Result, SinglePointResult
+from atomq.structure import Structure, StructureError
+from atomq.tasks import CellRelax, Relax, SinglePoint, TaskSpec
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "AtomqError",
+    "AuthenticationFailed",
+    "CalculatorPublic",
+    "CellRelax",
+    "Client",
+    "ConfigurationError",
+    "InvalidRequest",
+    "Job",
+    "JobCreate",
+    "JobFailed",
+    "JobPage",
+    "JobPublic",
+    "JobState",
+    "NotFound",
+    "Provenance",
+    "Relax",
+    "RelaxResult",
+    "Result",
+    "ServerError",
+    "SinglePoint",
+    "SinglePointResult",
+    "Structure",
+    "StructureError",
+    "TaskSpec",
+    "__version__",
+]

@@ -1,0 +1,277 @@
+"""The `atomq` command line.
+
+Client commands (submit, jobs, show, fetch, cancel, calculators) need only this
+package. Server commands (serve, worker, demo, users) need `atomq[server]` and
+import it only when called.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Callable, Sequence
+from typing import Any
+
+from atomq.client import Client
+from atomq.errors import AtomqError
+from atomq.tasks import CellRelax, Relax, SinglePoint
+
+SERVER_EXTRA_HINT = "this command needs the server parts: pip install 'atomq[server]'"
+
+
+def _server_settings(args: argparse.Namespace) -> Any:
+    try:
+        from atomq_service.settings import Settings
+    except ImportError as exc:
+        raise SystemExit(f"{SERVER_EXTRA_HINT} ({exc})") from exc
+    overrides: dict[str, Any] = {}
+    for option in ("data_dir", "database_url", "broker_url"):
+        value = getattr(args, option, None)
+        if value:
+            overrides[option] = value
+    return Settings(**overrides)
+
+
+def _add_server_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--data-dir", help="where SQLite, artifacts and the broker live")
+    parser.add_argument(
+        "--database", dest="database_url", help="e.g. postgresql+psycopg://user@host/atomq"
+    )
+    parser.add_argument("--broker", dest="broker_url", help="e.g. redis://host:6379/0")
+
+
+# -- server commands ----------------------------------------------------------
+def cmd_serve(args: argparse.Namespace) -> int:
+    settings = _server_settings(args)
+    from atomq_service.embedded import EmbeddedStack
+
+    stack = EmbeddedStack(settings, host=args.host, port=args.port, workers=args.workers)
+    stack.start()
+    print(f"atomq is serving on {stack.url} with {args.workers} worker process(es)")
+    print(f"database: {stack.settings.resolved_database_url}")
+    print(f"broker:   {stack.settings.broker_url}")
+    print("the client config for this machine's user is written; Ctrl-C stops everything")
+    stack.wait()
+    return 0
+
+
+def cmd_worker(args: argparse.Namespace) -> int:
+    settings = _server_settings(args)
+    try:
+        from atomq_workers.main import run_worker
+    except ImportError as exc:
+        raise SystemExit(f"{SERVER_EXTRA_HINT} ({exc})") from exc
+    run_worker(settings, args.concurrency, args.loglevel)
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    settings = _server_settings(args)
+    from atomq_service.demo import run_demo
+
+    return run_demo(settings, port=args.port)
+
+
+def cmd_users_add(args: argparse.Namespace) -> int:
+    settings = _server_settings(args)
+    from atomq_service.db import create_schema, make_engine
+    from atomq_service.users import add_user
+
+    if settings.database_url is None:
+        settings.data_dir.mkdir(parents=True, exist_ok=True)
+    engine = make_engine(settings.resolved_database_url)
+    create_schema(engine)
+    token = add_user(engine, args.name, role="admin" if args.admin else "member")
+    print(token)
+    print(f"(the token for {args.name}; it is shown only this once)", file=sys.stderr)
+    return 0
+
+
+# -- client commands ----------------------------------------------------------
+def _client(args: argparse.Namespace) -> Client:
+    return Client(args.url, args.token)
+
+
+def cmd_submit(args: argparse.Namespace) -> int:
+    import ase.io
+
+    task: SinglePoint | Relax
+    if args.task == "single_point":
+        task = SinglePoint()
+    else:
+        task = Relax(
+            optimizer=args.optimizer,
+            fmax=args.fmax,
+            max_steps=args.max_steps,
+            cell=CellRelax(scalar_pressure=args.pressure) if args.relax_cell else None,
+        )
+    images = ase.io.read(args.file, index=":")
+    with _client(args) as client:
+        for atoms in images:
+            job = client.submit(atoms, task, calculator=args.calculator, tags=args.tag)
+            print(job.id)
+            if args.wait:
+                info = job.wait(progress=True)
+                print(
+                    f"job {job.id} {info.state.value}" + (f": {info.error}" if info.error else "")
+                )
+    return 0
+
+
+def cmd_jobs(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        page = client.jobs(
+            state=args.state,
+            owner=args.owner,
+            calculator=args.calculator,
+            kind=args.kind,
+            tag=args.tag,
+            limit=args.limit,
+        )
+    print(f"{'id':>6}  {'state':<9}  {'kind':<12}  {'calculator':<16}  {'formula':<14}  owner")
+    for job in page.items:
+        print(
+            f"{job.id:>6}  {job.state.value:<9}  {job.kind:<12}  {job.calculator:<16}  "
+            f"{job.formula:<14}  {job.owner}"
+        )
+    print(f"({len(page.items)} of {page.total})")
+    return 0
+
+
+def cmd_show(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        job = client.job(args.id)
+        info = job.info()
+        document: dict[str, Any] = {"job": info.model_dump(mode="json")}
+        if info.state.value == "succeeded":
+            result = job.result().model_dump(mode="json")
+            result.pop("structure", None)
+            result.pop("forces", None)
+            if result.get("kind") == "relax":
+                result["trace"] = f"{len(result['trace'])} steps"
+                if not result["converged"]:
+                    print(
+                        "WARNING: the relaxation did NOT converge within max_steps", file=sys.stderr
+                    )
+            document["result"] = result
+            document["provenance"] = job.provenance().model_dump(mode="json")
+    print(json.dumps(document, indent=2))
+    return 0
+
+
+def cmd_fetch(args: argparse.Namespace) -> int:
+    import ase.io
+
+    with _client(args) as client:
+        atoms = client.job(args.id).atoms(timeout=args.timeout)
+    ase.io.write(args.output, atoms)
+    print(f"wrote {args.output}")
+    return 0
+
+
+def cmd_cancel(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        info = client.job(args.id).cancel()
+    note = " (stops at its next step)" if info.cancel_requested and not info.state.finished else ""
+    print(f"job {info.id} {info.state.value}{note}")
+    return 0
+
+
+def cmd_calculators(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        calculators = client.calculators()
+    for c in calculators:
+        status = "retired" if c.retired else "active"
+        print(f"{c.ref:<20} {status:<8} backend={c.backend:<14} elements={','.join(c.elements)}")
+        if c.notes:
+            print(f"{'':<20} {c.notes}")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="atomq", description=__doc__.splitlines()[0])
+    commands = parser.add_subparsers(dest="command", required=True)
+
+    def client_command(
+        name: str, handler: Callable[[argparse.Namespace], int], help_text: str
+    ) -> argparse.ArgumentParser:
+        sub = commands.add_parser(name, help=help_text)
+        sub.add_argument("--url", help="service URL (default: ATOMQ_URL or the client config)")
+        sub.add_argument("--token", help="bearer token (default: ATOMQ_TOKEN or the config)")
+        sub.set_defaults(handler=handler)
+        return sub
+
+    serve = commands.add_parser("serve", help="run API, broker and workers on this machine")
+    _add_server_options(serve)
+    serve.add_argument("--host", default="127.0.0.1")
+    serve.add_argument("--port", type=int, default=8765)
+    serve.add_argument("--workers", type=int, default=2, help="worker processes (CPU cores)")
+    serve.set_defaults(handler=cmd_serve)
+
+    worker = commands.add_parser("worker", help="run a worker that joins a service")
+    _add_server_options(worker)
+    worker.add_argument("--concurrency", type=int, default=2, help="jobs run at once")
+    worker.add_argument("--loglevel", default="INFO")
+    worker.set_defaults(handler=cmd_worker)
+
+    demo = commands.add_parser("demo", help="start the embedded service and run a demo study")
+    _add_server_options(demo)
+    demo.add_argument("--port", type=int, default=8766)
+    demo.set_defaults(handler=cmd_demo)
+
+    users = commands.add_parser("users", help="manage users (on the server machine)")
+    users_commands = users.add_subparsers(dest="users_command", required=True)
+    users_add = users_commands.add_parser("add", help="create a user and print a new token")
+    _add_server_options(users_add)
+    users_add.add_argument("name")
+    users_add.add_argument("--admin", action="store_true", help="give the admin role")
+    users_add.set_defaults(handler=cmd_users_add)
+
+    submit = client_command("submit", cmd_submit, "submit every structure in a file")
+    submit.add_argument("file", help="any format ase.io.read understands")
+    submit.add_argument("--task", choices=["single_point", "relax"], default="single_point")
+    submit.add_argument("--calculator", required=True, help="'name' or 'name@version'")
+    submit.add_argument("--optimizer", choices=["BFGS", "LBFGS", "FIRE"], default="BFGS")
+    submit.add_argument("--fmax", type=float, default=0.05, help="eV/Angstrom")
+    submit.add_argument("--max-steps", type=int, default=500)
+    submit.add_argument("--relax-cell", action="store_true", help="relax the cell as well")
+    submit.add_argument("--pressure", type=float, default=0.0, help="eV/Angstrom^3")
+    submit.add_argument("--tag", action="append", default=[])
+    submit.add_argument("--wait", action="store_true", help="wait, showing progress")
+
+    jobs = client_command("jobs", cmd_jobs, "list jobs, newest first")
+    jobs.add_argument("--state")
+    jobs.add_argument("--owner")
+    jobs.add_argument("--calculator")
+    jobs.add_argument("--kind")
+    jobs.add_argument("--tag")
+    jobs.add_argument("--limit", type=int, default=50)
+
+    show = client_command("show", cmd_show, "a job with its result summary and provenance")
+    show.add_argument("id", type=int)
+
+    fetch = client_command("fetch", cmd_fetch, "write a job's final structure and results")
+    fetch.add_argument("id", type=int)
+    fetch.add_argument("-o", "--output", required=True, help="e.g. out.extxyz")
+    fetch.add_argument("--timeout", type=float, default=None, help="seconds to wait")
+
+    cancel = client_command("cancel", cmd_cancel, "cancel a job")
+    cancel.add_argument("id", type=int)
+
+    client_command("calculators", cmd_calculators, "list registered calculator versions")
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    handler: Callable[[argparse.Namespace], int] = args.handler
+    try:
+        return handler(args)
+    except AtomqError as exc:
+        print(f"atomq: {exc}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

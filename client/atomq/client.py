@@ -1,0 +1,234 @@
+"""The notebook-facing client: submit jobs, watch them, fetch results as ASE objects."""
+
+from __future__ import annotations
+
+import sys
+import time
+from typing import Any, TextIO
+
+import httpx
+from ase import Atoms
+from ase.calculators.singlepoint import SinglePointCalculator
+from pydantic import TypeAdapter
+
+from atomq import config
+from atomq.errors import AuthenticationFailed, InvalidRequest, JobFailed, NotFound, ServerError
+from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
+from atomq.results import Provenance, Result
+from atomq.structure import Structure
+from atomq.tasks import Relax, SinglePoint
+
+_result_adapter: TypeAdapter[Result] = TypeAdapter(Result)
+
+
+class Client:
+    """A connection to one atomq service. Use as a context manager or call close()."""
+
+    def __init__(
+        self,
+        url: str | None = None,
+        token: str | None = None,
+        *,
+        timeout: float = 30.0,
+        transport: httpx.BaseTransport | None = None,
+    ) -> None:
+        self.url, token = config.resolve(url, token)
+        self._http = httpx.Client(
+            base_url=self.url,
+            headers={"Authorization": f"Bearer {token}"},
+            timeout=timeout,
+            transport=transport,
+        )
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        self._http.close()
+
+    def __repr__(self) -> str:
+        return f"Client({self.url!r})"
+
+    # -- requests -------------------------------------------------------------
+    def request(self, method: str, path: str, **kwargs: Any) -> httpx.Response:
+        """Send one request; raise a typed error carrying the server's message."""
+        response = self._http.request(method, path, **kwargs)
+        if response.status_code >= 400:
+            raise _error_from(response)
+        return response
+
+    # -- jobs -----------------------------------------------------------------
+    def submit(
+        self,
+        atoms: Atoms | Structure,
+        task: SinglePoint | Relax,
+        *,
+        calculator: str,
+        tags: list[str] | None = None,
+    ) -> Job:
+        """Queue one calculation; returns at once with a Job handle."""
+        structure = atoms if isinstance(atoms, Structure) else Structure.from_atoms(atoms)
+        body = JobCreate(structure=structure, task=task, calculator=calculator, tags=tags or [])
+        response = self.request(
+            "POST",
+            "/v1/jobs",
+            content=body.model_dump_json(),
+            headers={"Content-Type": "application/json"},
+        )
+        info = JobPublic.model_validate_json(response.content)
+        return Job(self, info.id, info)
+
+    def job(self, job_id: int) -> Job:
+        """A handle to an existing job."""
+        return Job(self, job_id)
+
+    def jobs(
+        self,
+        *,
+        state: JobState | str | None = None,
+        owner: str | None = None,
+        calculator: str | None = None,
+        kind: str | None = None,
+        tag: str | None = None,
+        offset: int = 0,
+        limit: int = 100,
+    ) -> JobPage:
+        """List jobs, newest first, filtered by any of the given fields."""
+        params: dict[str, str | int] = {"offset": offset, "limit": limit}
+        for key, value in (
+            ("state", state),
+            ("owner", owner),
+            ("calculator", calculator),
+            ("kind", kind),
+            ("tag", tag),
+        ):
+            if value is not None:
+                params[key] = str(value)
+        response = self.request("GET", "/v1/jobs", params=params)
+        return JobPage.model_validate_json(response.content)
+
+    def calculators(self) -> list[CalculatorPublic]:
+        response = self.request("GET", "/v1/calculators")
+        return [CalculatorPublic.model_validate(item) for item in response.json()]
+
+
+class Job:
+    """A handle to one job: few verbs, explicit timeouts, no hidden state beyond the last info."""
+
+    def __init__(self, client: Client, job_id: int, info: JobPublic | None = None) -> None:
+        self.client = client
+        self.id = job_id
+        self._info = info
+
+    def __repr__(self) -> str:
+        state = self._info.state.value if self._info else "?"
+        return f"Job({self.id}, {state})"
+
+    def info(self) -> JobPublic:
+        """Fetch the job's current record."""
+        response = self.client.request("GET", f"/v1/jobs/{self.id}")
+        self._info = JobPublic.model_validate_json(response.content)
+        return self._info
+
+    def status(self) -> JobState:
+        return self.info().state
+
+    def wait(
+        self,
+        timeout: float | None = None,
+        *,
+        poll_interval: float = 0.2,
+        progress: bool = False,
+        stream: TextIO | None = None,
+    ) -> JobPublic:
+        """Block until the job finishes; TimeoutError if it has not after `timeout` seconds.
+
+        With progress=True a one-line bar (step, energy, fmax) is redrawn on stderr.
+        """
+        deadline = None if timeout is None else time.monotonic() + timeout
+        out = stream or sys.stderr
+        interval = min(poll_interval, 0.05)  # start fast: small jobs finish in milliseconds
+        while True:
+            info = self.info()
+            if progress:
+                out.write("\r" + _progress_line(info))
+                out.flush()
+            if info.state.finished:
+                if progress:
+                    out.write("\n")
+                return info
+            if deadline is not None and time.monotonic() >= deadline:
+                raise TimeoutError(
+                    f"job {self.id} still {info.state.value} after {timeout} s; "
+                    "call wait() again or raise the timeout"
+                )
+            time.sleep(interval)
+            interval = min(interval * 2, poll_interval)
+
+    def result(self, timeout: float | None = None) -> Result:
+        """Wait for the job and return its result; JobFailed if it failed or was cancelled."""
+        info = self.wait(timeout)
+        if info.state is not JobState.succeeded:
+            raise JobFailed(self.id, info.state.value, info.error)
+        response = self.client.request("GET", f"/v1/jobs/{self.id}/result")
+        return _result_adapter.validate_json(response.content)
+
+    def atoms(self, timeout: float | None = None) -> Atoms:
+        """The final structure as ase.Atoms with a SinglePointCalculator holding the results."""
+        result = self.result(timeout)
+        atoms = result.structure.to_atoms()
+        atoms.calc = SinglePointCalculator(
+            atoms,
+            energy=result.energy,
+            forces=result.forces,
+            **({"stress": list(result.stress)} if result.stress is not None else {}),
+        )
+        return atoms
+
+    def provenance(self, timeout: float | None = None) -> Provenance:
+        """Who, with what code and which calculator version, produced the result."""
+        self.wait(timeout)
+        response = self.client.request("GET", f"/v1/jobs/{self.id}/provenance")
+        return Provenance.model_validate_json(response.content)
+
+    def cancel(self) -> JobPublic:
+        """Ask the service to stop the job; a running job stops at its next step."""
+        response = self.client.request("POST", f"/v1/jobs/{self.id}/cancel")
+        self._info = JobPublic.model_validate_json(response.content)
+        return self._info
+
+
+def _progress_line(info: JobPublic) -> str:
+    p = info.progress
+    if p is None:
+        return f"job {info.id} {info.state.value:<9}"
+    width = 30
+    done = int(width * min(p.step, p.total_steps) / max(p.total_steps, 1))
+    bar = "#" * done + "." * (width - done)
+    parts = [f"job {info.id} {info.state.value:<9} [{bar}] step {p.step}/{p.total_steps}"]
+    if p.energy is not None:
+        parts.append(f"E={p.energy:.6f} eV")
+    if p.fmax is not None:
+        parts.append(f"fmax={p.fmax:.4f} eV/A")
+    return " ".join(parts)
+
+
+def _error_from(response: httpx.Response) -> ServerError:
+    code: str | None = None
+    try:
+        body = response.json()
+        message = str(body.get("detail", response.text))
+        code = body.get("code")
+    except ValueError:
+        message = response.text or response.reason_phrase
+    status = response.status_code
+    if status in (401, 403):
+        return AuthenticationFailed(status, message, code)
+    if status == 404:
+        return NotFound(status, message, code)
+    if 400 <= status < 500:
+        return InvalidRequest(status, message, code)
+    return ServerError(status, message, code)

@@ -1,0 +1,206 @@
+"""The wire form of an atomic structure, and its lossless round trip with ase.Atoms.
+
+Units are ASE's: positions and cell in Angstrom, momenta in ASE units
+(amu * Angstrom / ASE time unit), charges in e, magnetic moments in Bohr magnetons.
+Floats travel as JSON numbers; Python writes the shortest repr that reads back
+to the same float64, so the round trip is exact.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from typing import Annotated, Any, Literal
+
+import numpy as np
+from ase import Atoms
+from ase.constraints import FixAtoms, FixCartesian
+from pydantic import BaseModel, ConfigDict, Field, JsonValue, model_validator
+
+Vec3 = tuple[float, float, float]
+Mask3 = tuple[bool, bool, bool]
+
+
+class FixAtomsConstraint(BaseModel):
+    """ASE's FixAtoms: the listed atoms do not move."""
+
+    model_config = ConfigDict(extra="forbid")
+    type: Literal["FixAtoms"] = "FixAtoms"
+    indices: list[int]
+
+
+class FixCartesianConstraint(BaseModel):
+    """ASE's FixCartesian: the listed atoms keep the masked Cartesian components."""
+
+    model_config = ConfigDict(extra="forbid")
+    type: Literal["FixCartesian"] = "FixCartesian"
+    indices: list[int]
+    mask: Mask3 = (True, True, True)
+
+
+Constraint = Annotated[FixAtomsConstraint | FixCartesianConstraint, Field(discriminator="type")]
+
+
+class StructureError(ValueError):
+    """A structure that cannot be represented or is physically malformed."""
+
+
+class Structure(BaseModel):
+    """Atoms on the wire: everything an ase.Atoms carries that a calculation depends on."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    numbers: list[int] = Field(description="Atomic numbers, one per atom.")
+    positions: list[Vec3] = Field(description="Cartesian positions in Angstrom.")
+    cell: tuple[Vec3, Vec3, Vec3] = Field(
+        default=((0.0, 0.0, 0.0), (0.0, 0.0, 0.0), (0.0, 0.0, 0.0)),
+        description="Cell vectors as rows, Angstrom.",
+    )
+    pbc: Mask3 = (False, False, False)
+    constraints: list[Constraint] = Field(default_factory=list)
+    initial_charges: list[float] | None = None
+    initial_magmoms: list[float] | None = None
+    momenta: list[Vec3] | None = Field(
+        default=None, description="Momenta in ASE units (amu*Angstrom/ASE time)."
+    )
+    tags: list[int] | None = None
+    info: dict[str, JsonValue] = Field(default_factory=dict)
+
+    @model_validator(mode="after")
+    def _check_consistent(self) -> Structure:
+        n = len(self.numbers)
+        if n == 0:
+            raise ValueError("structure has no atoms; give at least one atom")
+        for z in self.numbers:
+            if not 1 <= z <= 118:
+                raise ValueError(f"atomic number {z} is not an element (use 1 to 118)")
+        per_atom: dict[str, list[Any] | None] = {
+            "positions": self.positions,
+            "initial_charges": self.initial_charges,
+            "initial_magmoms": self.initial_magmoms,
+            "momenta": self.momenta,
+            "tags": self.tags,
+        }
+        for name, values in per_atom.items():
+            if values is not None and len(values) != n:
+                raise ValueError(f"{name} has {len(values)} entries but there are {n} atoms")
+        for i, xyz in enumerate(self.positions):
+            if not all(math.isfinite(x) for x in xyz):
+                raise ValueError(f"position of atom {i} is not finite: {list(xyz)}")
+        if not all(math.isfinite(x) for row in self.cell for x in row):
+            raise ValueError("cell contains a value that is not finite")
+        for name in ("initial_charges", "initial_magmoms"):
+            values = getattr(self, name)
+            if values is not None and not all(math.isfinite(x) for x in values):
+                raise ValueError(f"{name} contains a value that is not finite")
+        if self.momenta is not None and not all(math.isfinite(x) for p in self.momenta for x in p):
+            raise ValueError("momenta contain a value that is not finite")
+        for c in self.constraints:
+            bad = [i for i in c.indices if not 0 <= i < n]
+            if bad:
+                raise ValueError(f"{c.type} names atom index {bad[0]}, but there are {n} atoms")
+        return self
+
+    @property
+    def natoms(self) -> int:
+        return len(self.numbers)
+
+    @classmethod
+    def from_atoms(cls, atoms: Atoms) -> Structure:
+        """Capture an ase.Atoms; raises StructureError for what cannot travel losslessly."""
+        constraints: list[Constraint] = []
+        for c in atoms.constraints:
+            if isinstance(c, FixAtoms):
+                constraints.append(FixAtomsConstraint(indices=[int(i) for i in c.index]))
+            elif isinstance(c, FixCartesian):
+                mask = tuple(bool(m) for m in c.mask)
+                constraints.append(
+                    FixCartesianConstraint(
+                        indices=[int(i) for i in c.index], mask=(mask[0], mask[1], mask[2])
+                    )
+                )
+            else:
+                raise StructureError(
+                    f"constraint {type(c).__name__} cannot be sent; "
+                    "supported are FixAtoms and FixCartesian"
+                )
+        info: dict[str, JsonValue] = {}
+        for key, value in atoms.info.items():
+            info[str(key)] = _json_safe(key, value)
+        magmoms = atoms.get_initial_magnetic_moments()
+        if magmoms.ndim != 1:
+            raise StructureError("non-collinear magnetic moments are not supported yet")
+        return cls(
+            numbers=atoms.numbers.tolist(),
+            positions=[_vec3(p) for p in atoms.positions],
+            cell=(_vec3(atoms.cell[0]), _vec3(atoms.cell[1]), _vec3(atoms.cell[2])),
+            pbc=(bool(atoms.pbc[0]), bool(atoms.pbc[1]), bool(atoms.pbc[2])),
+            constraints=constraints,
+            initial_charges=_optional_array(atoms, "initial_charges"),
+            initial_magmoms=_optional_array(atoms, "initial_magmoms"),
+            momenta=[_vec3(p) for p in atoms.arrays["momenta"]]
+            if "momenta" in atoms.arrays
+            else None,
+            tags=atoms.get_tags().tolist() if "tags" in atoms.arrays else None,
+            info=info,
+        )
+
+    def to_atoms(self) -> Atoms:
+        """Rebuild the ase.Atoms this structure was captured from."""
+        atoms = Atoms(
+            numbers=self.numbers,
+            positions=np.array(self.positions, dtype=float).reshape(-1, 3),
+            cell=np.array(self.cell, dtype=float),
+            pbc=self.pbc,
+        )
+        if self.initial_charges is not None:
+            atoms.set_initial_charges(self.initial_charges)
+        if self.initial_magmoms is not None:
+            atoms.set_initial_magnetic_moments(self.initial_magmoms)
+        if self.momenta is not None:
+            atoms.set_momenta(np.array(self.momenta, dtype=float), apply_constraint=False)
+        if self.tags is not None:
+            atoms.set_tags(self.tags)
+        atoms.info.update(json.loads(json.dumps(self.info)))
+        constraints: list[FixAtoms | FixCartesian] = []
+        for c in self.constraints:
+            if isinstance(c, FixAtomsConstraint):
+                constraints.append(FixAtoms(indices=c.indices))
+            else:
+                constraints.append(FixCartesian(c.indices, mask=c.mask))
+        if constraints:
+            atoms.set_constraint(constraints)
+        return atoms
+
+    def chemical_formula(self) -> str:
+        return str(Atoms(numbers=self.numbers).get_chemical_formula(mode="hill"))
+
+
+def _vec3(row: Any) -> Vec3:
+    return (float(row[0]), float(row[1]), float(row[2]))
+
+
+def _optional_array(atoms: Atoms, name: str) -> list[float] | None:
+    if name not in atoms.arrays:
+        return None
+    return [float(x) for x in atoms.arrays[name]]
+
+
+def _json_safe(key: object, value: Any) -> JsonValue:
+    """Return value if it survives JSON unchanged, else explain which info key to fix."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    try:
+        text = json.dumps(value, allow_nan=False)
+    except (TypeError, ValueError) as exc:
+        raise StructureError(
+            f"atoms.info[{key!r}] is not JSON-safe ({type(value).__name__}); "
+            "convert it to numbers, strings, lists or dicts, or remove it"
+        ) from exc
+    decoded: JsonValue = json.loads(text)
+    if decoded != value:
+        raise StructureError(
+            f"atoms.info[{key!r}] would change on the wire (tuples become lists, "
+            "non-string keys become strings); store it as a list or string-keyed dict"
+        )
+    return decoded

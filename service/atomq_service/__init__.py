@@ -1,0 +1,1 @@
+"""atomq's service: validates and records jobs, dispatches them, and serves results."""

@@ -1,0 +1,69 @@
+"""Typed dependencies shared by the routes."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from datetime import UTC, datetime
+from typing import Annotated
+
+from fastapi import Depends, Request
+from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+from sqlmodel import Session, select
+
+from atomq_service.errors import ApiError
+from atomq_service.messaging import Dispatcher
+from atomq_service.models import ApiToken, User
+from atomq_service.settings import Settings
+from atomq_service.users import hash_token
+
+_bearer = HTTPBearer(auto_error=False, description="A token printed by `atomq users add NAME`.")
+
+
+def get_session(request: Request) -> Iterator[Session]:
+    """One session per request; routes that write commit explicitly, anything else rolls back."""
+    with Session(request.app.state.engine, expire_on_commit=False) as session:
+        yield session
+
+
+def get_settings(request: Request) -> Settings:
+    settings: Settings = request.app.state.settings
+    return settings
+
+
+def get_dispatcher(request: Request) -> Dispatcher:
+    dispatcher: Dispatcher = request.app.state.dispatcher
+    return dispatcher
+
+
+SessionDep = Annotated[Session, Depends(get_session)]
+SettingsDep = Annotated[Settings, Depends(get_settings)]
+DispatcherDep = Annotated[Dispatcher, Depends(get_dispatcher)]
+
+
+def current_user(
+    session: SessionDep,
+    credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
+) -> User:
+    if credentials is None:
+        raise ApiError(
+            401,
+            "missing_token",
+            "missing bearer token: send 'Authorization: Bearer <token>' "
+            "(`atomq users add NAME` prints one)",
+        )
+    found = session.exec(
+        select(ApiToken, User)
+        .join(User, User.id == ApiToken.user_id)  # type: ignore[arg-type]
+        .where(ApiToken.token_sha256 == hash_token(credentials.credentials))
+    ).first()
+    if found is None:
+        raise ApiError(401, "invalid_token", "unknown token; ask an admin for a new one")
+    token, user = found
+    if token.revoked:
+        raise ApiError(401, "revoked_token", "this token was revoked; ask an admin for a new one")
+    if token.expires_at is not None and token.expires_at <= datetime.now(UTC):
+        raise ApiError(401, "expired_token", "this token has expired; ask an admin for a new one")
+    return user
+
+
+CurrentUser = Annotated[User, Depends(current_user)]

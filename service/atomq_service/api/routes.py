@@ -1,0 +1,92 @@
+"""Routes under /v1: each a few lines over the job and registry modules."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Query
+from sqlmodel import select
+
+from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
+from atomq.results import Provenance, Result
+from atomq_service import jobs
+from atomq_service.api.deps import CurrentUser, DispatcherDep, SessionDep, SettingsDep
+from atomq_service.models import Calculator
+
+router = APIRouter(prefix="/v1")
+
+
+@router.get("/health", tags=["service"])
+def health(session: SessionDep) -> dict[str, str]:
+    session.exec(select(1)).one()
+    return {"status": "ok", "database": "ok"}
+
+
+@router.post("/jobs", status_code=201, tags=["jobs"])
+def create_job(
+    body: JobCreate,
+    user: CurrentUser,
+    session: SessionDep,
+    settings: SettingsDep,
+    dispatcher: DispatcherDep,
+) -> JobPublic:
+    job = jobs.create_job(session, user, body, settings)
+    public = jobs.to_public(session, [job])[0]
+    # The database is the truth: commit first, then send the wake-up call.
+    session.commit()
+    assert job.id is not None
+    dispatcher.send(job.id, job.calculator_ref)
+    return public
+
+
+@router.get("/jobs", tags=["jobs"])
+def list_jobs(
+    _user: CurrentUser,
+    session: SessionDep,
+    state: JobState | None = None,
+    owner: str | None = None,
+    calculator: Annotated[str | None, Query(description="'name' or 'name@version'")] = None,
+    kind: str | None = None,
+    tag: str | None = None,
+    offset: Annotated[int, Query(ge=0)] = 0,
+    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
+) -> JobPage:
+    return jobs.list_jobs(
+        session,
+        state=state,
+        owner=owner,
+        calculator=calculator,
+        kind=kind,
+        tag=tag,
+        offset=offset,
+        limit=limit,
+    )
+
+
+@router.get("/jobs/{job_id}", tags=["jobs"])
+def get_job(job_id: int, _user: CurrentUser, session: SessionDep) -> JobPublic:
+    return jobs.to_public(session, [jobs.get_job(session, job_id)])[0]
+
+
+@router.post("/jobs/{job_id}/cancel", tags=["jobs"])
+def cancel_job(job_id: int, _user: CurrentUser, session: SessionDep) -> JobPublic:
+    job = jobs.cancel_job(session, jobs.get_job(session, job_id))
+    public = jobs.to_public(session, [job])[0]
+    session.commit()
+    return public
+
+
+@router.get("/jobs/{job_id}/result", tags=["results"], response_model=Result)
+def get_result(job_id: int, _user: CurrentUser, session: SessionDep) -> Any:
+    return jobs.get_result(session, jobs.get_job(session, job_id)).result
+
+
+@router.get("/jobs/{job_id}/provenance", tags=["results"], response_model=Provenance)
+def get_provenance(job_id: int, _user: CurrentUser, session: SessionDep) -> Any:
+    return jobs.get_result(session, jobs.get_job(session, job_id)).provenance
+
+
+@router.get("/calculators", tags=["calculators"])
+def list_calculators(_user: CurrentUser, session: SessionDep) -> list[CalculatorPublic]:
+    rows = session.exec(select(Calculator).order_by(Calculator.name, Calculator.id)).all()  # type: ignore[arg-type]
+    return [CalculatorPublic.model_validate({**c.model_dump(), "ref": c.ref}) for c in rows]

@@ -1,0 +1,64 @@
+"""The FastAPI application."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+
+from atomq_service.api.routes import router
+from atomq_service.db import create_schema, make_engine
+from atomq_service.errors import ApiError
+from atomq_service.messaging import Dispatcher
+from atomq_service.registry import seed_defaults
+from atomq_service.settings import Settings, get_settings
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or get_settings()
+    if settings.database_url is None:
+        settings.data_dir.mkdir(parents=True, exist_ok=True)
+    engine = make_engine(settings.resolved_database_url)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        create_schema(engine)
+        seed_defaults(engine)
+        yield
+        app.state.dispatcher.close()
+        engine.dispose()
+
+    app = FastAPI(
+        title="atomq",
+        version="1",
+        summary="A lab-wide job service for atomistic calculations.",
+        description=(
+            "Units are ASE's: Angstrom, eV, eV/Angstrom, eV/Angstrom^3. Simulated numbers "
+            "need validation before any engineering or safety decision."
+        ),
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.engine = engine
+    app.state.dispatcher = Dispatcher(settings.broker_url or "memory://")
+    app.include_router(router)
+
+    @app.exception_handler(ApiError)
+    async def _api_error(_request: Request, exc: ApiError) -> JSONResponse:
+        return JSONResponse({"detail": exc.message, "code": exc.code}, status_code=exc.status_code)
+
+    @app.exception_handler(RequestValidationError)
+    async def _invalid(_request: Request, exc: RequestValidationError) -> JSONResponse:
+        problems = []
+        for error in exc.errors():
+            where = ".".join(str(part) for part in error["loc"] if part != "body")
+            message = str(error["msg"]).removeprefix("Value error, ")
+            problems.append(f"{where}: {message}" if where else message)
+        return JSONResponse(
+            {"detail": "; ".join(problems), "code": "invalid_input"}, status_code=422
+        )
+
+    return app

@@ -1,0 +1,55 @@
+"""Engine and sessions. The database is the single source of truth.
+
+SQLite (the embedded default) needs care under concurrent writers: Python's
+sqlite3 driver opens no transaction before a SELECT, so read-then-write loses
+updates, and the default deferred transactions deadlock into "database is
+locked". We therefore run SQLite in WAL mode and begin every transaction with
+BEGIN IMMEDIATE (one writer at a time, readers unaffected by WAL), and never
+expire objects on commit so no hidden refresh queries run afterwards.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from sqlalchemy import Engine, create_engine, event
+from sqlmodel import Session, SQLModel
+
+
+def make_engine(url: str) -> Engine:
+    if url.startswith("sqlite"):
+        engine = create_engine(
+            url, connect_args={"check_same_thread": False, "timeout": 60}, pool_size=20
+        )
+
+        @event.listens_for(engine, "connect")
+        def _on_connect(dbapi_connection: Any, _record: Any) -> None:
+            dbapi_connection.isolation_level = None  # we emit BEGIN ourselves
+            cursor = dbapi_connection.cursor()
+            cursor.execute("PRAGMA journal_mode=WAL")
+            cursor.execute("PRAGMA synchronous=NORMAL")
+            cursor.execute("PRAGMA foreign_keys=ON")
+            cursor.execute("PRAGMA busy_timeout=60000")
+            cursor.close()
+
+        @event.listens_for(engine, "begin")
+        def _on_begin(connection: Any) -> None:
+            connection.exec_driver_sql("BEGIN IMMEDIATE")
+
+        return engine
+    return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20)
+
+
+def create_schema(engine: Engine) -> None:
+    from atomq_service import models  # noqa: F401  (registers the tables)
+
+    SQLModel.metadata.create_all(engine)
+
+
+@contextmanager
+def transaction(engine: Engine) -> Iterator[Session]:
+    """One unit of work: committed on success, rolled back on error."""
+    with Session(engine, expire_on_commit=False) as session, session.begin():
+        yield session

@@ -1,0 +1,136 @@
+"""Job records: create, read, list, cancel. Routes call these; so do tests and the CLI."""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from collections.abc import Sequence
+
+from sqlalchemy import func
+from sqlmodel import Session, col, select
+
+from atomq.hashing import input_hash
+from atomq.jobs import JobCreate, JobPage, JobPublic, JobState
+from atomq_service import registry
+from atomq_service.errors import ApiError
+from atomq_service.models import Job, JobResult, JobTag, User, utcnow
+from atomq_service.settings import Settings
+from atomq_service.validation import check_job
+
+
+def create_job(session: Session, owner: User, request: JobCreate, settings: Settings) -> Job:
+    """Validate and record a job (state queued). Raises ApiError before writing anything."""
+    calculator = registry.resolve(session, request.calculator)
+    check_job(request, calculator, settings)
+    tags = sorted(set(request.tags))
+    for tag in tags:
+        if not tag or len(tag) > 64:
+            raise ApiError(422, "invalid_tag", f"tag {tag!r} must be 1 to 64 characters")
+    assert owner.id is not None and calculator.id is not None
+    seed = None
+    job = Job(
+        owner_id=owner.id,
+        kind=request.task.kind,
+        calculator_id=calculator.id,
+        calculator_ref=calculator.ref,
+        task=request.task.model_dump(mode="json"),
+        structure=request.structure.model_dump(mode="json"),
+        natoms=request.structure.natoms,
+        formula=request.structure.chemical_formula(),
+        input_hash=input_hash(request.structure, request.task, calculator.ref, seed),
+        seed=seed,
+    )
+    session.add(job)
+    session.flush()
+    assert job.id is not None
+    for tag in tags:
+        session.add(JobTag(job_id=job.id, tag=tag))
+    return job
+
+
+def get_job(session: Session, job_id: int) -> Job:
+    job = session.get(Job, job_id)
+    if job is None:
+        raise ApiError(404, "job_not_found", f"no job with id {job_id}")
+    return job
+
+
+def to_public(session: Session, jobs: Sequence[Job]) -> list[JobPublic]:
+    """Convert rows to the wire form with two queries in all (owners, tags), never N+1."""
+    if not jobs:
+        return []
+    ids = [job.id for job in jobs]
+    owner_ids = {job.owner_id for job in jobs}
+    owners = dict(session.exec(select(User.id, User.name).where(col(User.id).in_(owner_ids))).all())
+    tags: dict[int, list[str]] = defaultdict(list)
+    for job_id, tag in session.exec(
+        select(JobTag.job_id, JobTag.tag).where(col(JobTag.job_id).in_(ids)).order_by(JobTag.tag)
+    ).all():
+        tags[job_id].append(tag)
+    return [
+        JobPublic.model_validate(
+            {
+                **job.model_dump(),
+                "owner": owners[job.owner_id],
+                "calculator": job.calculator_ref,
+                "tags": tags[job.id] if job.id is not None else [],
+            }
+        )
+        for job in jobs
+    ]
+
+
+def list_jobs(
+    session: Session,
+    *,
+    state: JobState | None = None,
+    owner: str | None = None,
+    calculator: str | None = None,
+    kind: str | None = None,
+    tag: str | None = None,
+    offset: int = 0,
+    limit: int = 100,
+) -> JobPage:
+    query = select(Job)
+    if state is not None:
+        query = query.where(Job.state == state.value)
+    if owner is not None:
+        query = query.join(User, col(User.id) == col(Job.owner_id)).where(User.name == owner)
+    if calculator is not None:
+        # 'emt' matches every version, 'emt@1' exactly that one.
+        if "@" in calculator:
+            query = query.where(Job.calculator_ref == calculator)
+        else:
+            query = query.where(col(Job.calculator_ref).startswith(calculator + "@"))
+    if kind is not None:
+        query = query.where(Job.kind == kind)
+    if tag is not None:
+        query = query.join(JobTag, col(JobTag.job_id) == col(Job.id)).where(JobTag.tag == tag)
+    total = session.exec(select(func.count()).select_from(query.subquery())).one()
+    rows = session.exec(query.order_by(col(Job.id).desc()).offset(offset).limit(limit)).all()
+    return JobPage(items=to_public(session, rows), total=total, offset=offset, limit=limit)
+
+
+def cancel_job(session: Session, job: Job) -> Job:
+    """A queued job ends at once; a running one is flagged and its worker stops it."""
+    state = JobState(job.state)
+    if state.finished:
+        raise ApiError(409, "job_finished", f"job {job.id} already ended {state.value}")
+    if state is JobState.queued:
+        job.state = JobState.cancelled.value
+        job.finished_at = utcnow()
+        job.error = "cancelled before it started"
+    else:
+        job.cancel_requested = True
+    session.add(job)
+    return job
+
+
+def get_result(session: Session, job: Job) -> JobResult:
+    stored = session.get(JobResult, job.id)
+    if stored is None:
+        state = JobState(job.state)
+        if state is JobState.succeeded:  # cannot happen: both are written in one transaction
+            raise ApiError(500, "result_missing", f"job {job.id} succeeded but has no result")
+        reason = f": {job.error}" if job.error else ""
+        raise ApiError(409, "no_result", f"job {job.id} is {state.value} and has no result{reason}")
+    return stored

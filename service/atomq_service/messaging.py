@@ -1,0 +1,60 @@
+"""The message contract between service and workers, defined once for both.
+
+A message carries only a job id (JSON, never pickle); the job itself lives in
+the database. Each registered calculator version has its own queue, so a worker
+consumes only the calculators it can run.
+"""
+
+from __future__ import annotations
+
+import logging
+from typing import Any
+
+from celery import Celery
+
+RUN_JOB_TASK = "atomq.run_job"
+
+log = logging.getLogger(__name__)
+
+
+def queue_name(calculator_ref: str) -> str:
+    return f"atomq.{calculator_ref}"
+
+
+def celery_config(broker_url: str) -> dict[str, Any]:
+    return {
+        "broker_url": broker_url,
+        "task_serializer": "json",
+        "accept_content": ["json"],  # a pickle message is refused, never executed
+        "result_serializer": "json",
+        "result_backend": None,  # results live in the database
+        "task_ignore_result": True,
+        "task_acks_late": True,  # a killed worker's job is redelivered
+        "task_reject_on_worker_lost": True,
+        "worker_prefetch_multiplier": 1,  # jobs are long; never hoard them
+        "broker_connection_retry_on_startup": True,
+        "worker_hijack_root_logger": False,
+        "task_default_queue": "atomq.default",
+    }
+
+
+class Dispatcher:
+    """Sends wake-up calls for committed jobs. Imports no task code."""
+
+    def __init__(self, broker_url: str) -> None:
+        self.celery = Celery("atomq-service")
+        self.celery.conf.update(celery_config(broker_url))
+
+    def send(self, job_id: int, calculator_ref: str) -> bool:
+        """Publish; on failure the job stays queued in the database for re-dispatch."""
+        try:
+            self.celery.send_task(
+                RUN_JOB_TASK, args=[job_id], queue=queue_name(calculator_ref), retry=False
+            )
+        except Exception as exc:  # the broker may be down; the job is safe in the database
+            log.warning("could not dispatch job %s: %s", job_id, exc)
+            return False
+        return True
+
+    def close(self) -> None:
+        self.celery.close()

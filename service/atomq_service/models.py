@@ -1,0 +1,107 @@
+"""Tables. Every filter the API offers has an index here."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+from typing import Any
+
+from sqlalchemy import JSON, Column, DateTime, TypeDecorator, UniqueConstraint
+from sqlmodel import Field, SQLModel
+
+
+def utcnow() -> datetime:
+    return datetime.now(UTC)
+
+
+class UTCDateTime(TypeDecorator[datetime]):
+    """Timestamps are stored in UTC and always come back timezone-aware (SQLite drops zones)."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Any) -> datetime | None:
+        if value is not None and value.tzinfo is None:
+            raise ValueError("naive datetime; use atomq_service.models.utcnow()")
+        return value
+
+    def process_result_value(self, value: datetime | None, dialect: Any) -> datetime | None:
+        if value is not None and value.tzinfo is None:
+            return value.replace(tzinfo=UTC)
+        return value
+
+
+class User(SQLModel, table=True):
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(unique=True, index=True)
+    role: str = Field(default="member")  # "member" or "admin"
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+
+
+class ApiToken(SQLModel, table=True):
+    """A bearer token, stored as its sha256 only; the plaintext is shown once."""
+
+    id: int | None = Field(default=None, primary_key=True)
+    user_id: int = Field(foreign_key="user.id", index=True)
+    token_sha256: str = Field(unique=True, index=True)
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+    expires_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
+    revoked: bool = False
+
+
+class Calculator(SQLModel, table=True):
+    """An immutable registered calculator version, `name@version`."""
+
+    __table_args__ = (UniqueConstraint("name", "version"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(index=True)
+    version: str
+    backend: str  # entry point name in group atomq.calculators
+    parameters: dict[str, Any] = Field(default_factory=dict, sa_column=Column(JSON))
+    elements: list[str] = Field(default_factory=list, sa_column=Column(JSON))
+    weights_path: str | None = None
+    weights_sha256: str | None = None
+    notes: str = ""
+    retired: bool = False
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+
+    @property
+    def ref(self) -> str:
+        return f"{self.name}@{self.version}"
+
+
+class Job(SQLModel, table=True):
+    id: int | None = Field(default=None, primary_key=True)
+    owner_id: int = Field(foreign_key="user.id", index=True)
+    state: str = Field(default="queued", index=True)
+    kind: str = Field(index=True)
+    calculator_id: int = Field(foreign_key="calculator.id", index=True)
+    calculator_ref: str = Field(index=True)  # name@version, fixed at submission
+    task: dict[str, Any] = Field(sa_column=Column(JSON, nullable=False))
+    structure: dict[str, Any] = Field(sa_column=Column(JSON, nullable=False))
+    natoms: int
+    formula: str
+    input_hash: str = Field(index=True)
+    seed: int | None = None
+    attempts: int = 0
+    cancel_requested: bool = False
+    progress: dict[str, Any] | None = Field(default=None, sa_column=Column(JSON))
+    error: str | None = None
+    worker: str | None = None  # host:pid of the process that ran it last
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime, index=True)
+    started_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
+    finished_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
+
+
+class JobTag(SQLModel, table=True):
+    job_id: int = Field(foreign_key="job.id", primary_key=True)
+    tag: str = Field(primary_key=True, index=True)
+
+
+class JobResult(SQLModel, table=True):
+    """The result and its provenance, written together in one transaction, once."""
+
+    job_id: int = Field(foreign_key="job.id", primary_key=True)
+    result: dict[str, Any] = Field(sa_column=Column(JSON, nullable=False))
+    provenance: dict[str, Any] = Field(sa_column=Column(JSON, nullable=False))
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)

@@ -1,0 +1,50 @@
+"""All service and worker configuration, read once from ATOMQ_* environment variables."""
+
+from __future__ import annotations
+
+import os
+from functools import lru_cache
+from pathlib import Path
+
+from pydantic import Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+def default_data_dir() -> Path:
+    base = Path(os.environ.get("XDG_DATA_HOME", Path.home() / ".local" / "share"))
+    return base / "atomq"
+
+
+class Settings(BaseSettings):
+    model_config = SettingsConfigDict(env_prefix="ATOMQ_")
+
+    data_dir: Path = Field(default_factory=default_data_dir)
+    database_url: str | None = Field(
+        default=None, description="SQLAlchemy URL; default is a SQLite file in data_dir."
+    )
+    broker_url: str | None = Field(
+        default=None, description="Celery broker, e.g. redis://host:6379/0."
+    )
+    max_atoms: int = Field(default=100_000, description="Largest structure accepted.")
+    max_steps: int = Field(default=1_000_000, description="Most steps one job may ask for.")
+    min_distance: float = Field(
+        default=0.5, description="Two atoms closer than this (Angstrom) are refused."
+    )
+    progress_interval_s: float = Field(
+        default=1.0, description="Workers write progress at most this often."
+    )
+
+    @property
+    def resolved_database_url(self) -> str:
+        if self.database_url:
+            return self.database_url
+        return f"sqlite:///{self.data_dir / 'atomq.db'}"
+
+    @property
+    def artifacts_dir(self) -> Path:
+        return self.data_dir / "artifacts"
+
+
+@lru_cache
+def get_settings() -> Settings:
+    return Settings()

@@ -1,0 +1,1 @@
+"""atomq's workers: Celery processes that run jobs against registered calculators."""

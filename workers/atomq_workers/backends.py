@@ -1,0 +1,69 @@
+"""Calculator backends: how a registered record becomes an ASE calculator.
+
+A backend is published under the entry-point group `atomq.calculators`; the
+registry names it. A lab adds its own by shipping a package with such an entry
+point, whose object is a `Backend`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from importlib.metadata import entry_points
+from pathlib import Path
+from typing import Any
+
+from ase.calculators.calculator import Calculator
+from ase.calculators.emt import EMT
+from ase.calculators.lj import LennardJones
+from ase.calculators.morse import MorsePotential
+
+ENTRY_POINT_GROUP = "atomq.calculators"
+
+
+@dataclass(frozen=True)
+class Backend:
+    """make(parameters, weights_path) returns a fresh ASE calculator."""
+
+    name: str
+    package: str  # the distribution whose version goes into provenance
+    make: Callable[[dict[str, Any], Path | None], Calculator]
+
+
+class BackendUnavailable(RuntimeError):
+    """The backend is not installed or cannot be imported on this machine."""
+
+
+def _emt(parameters: dict[str, Any], _weights: Path | None) -> Calculator:
+    return EMT(**parameters)
+
+
+def _lennard_jones(parameters: dict[str, Any], _weights: Path | None) -> Calculator:
+    return LennardJones(**parameters)
+
+
+def _morse(parameters: dict[str, Any], _weights: Path | None) -> Calculator:
+    return MorsePotential(**parameters)
+
+
+EMT_BACKEND = Backend("emt", "ase", _emt)
+LENNARD_JONES_BACKEND = Backend("lennard_jones", "ase", _lennard_jones)
+MORSE_BACKEND = Backend("morse", "ase", _morse)
+
+
+def load_backend(name: str) -> Backend:
+    """Find a backend by entry-point name; BackendUnavailable says why it cannot load."""
+    found = entry_points(group=ENTRY_POINT_GROUP, name=name)
+    if not found:
+        raise BackendUnavailable(
+            f"no backend {name!r} in entry-point group {ENTRY_POINT_GROUP!r} on this machine; "
+            "install the package that provides it"
+        )
+    entry = next(iter(found))
+    try:
+        backend = entry.load()
+    except Exception as exc:  # an optional dependency (torch, ...) may be missing
+        raise BackendUnavailable(f"backend {name!r} failed to import: {exc}") from exc
+    if not isinstance(backend, Backend):
+        raise BackendUnavailable(f"entry point {entry.value} is not an atomq Backend")
+    return backend

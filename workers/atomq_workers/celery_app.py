@@ -1,0 +1,36 @@
+"""The Celery application the worker processes run. Configuration lives in messaging.py."""
+
+from __future__ import annotations
+
+import os
+from functools import lru_cache
+
+from celery import Celery
+from celery.signals import worker_process_init
+from sqlalchemy import Engine
+
+from atomq_service.db import make_engine
+from atomq_service.messaging import RUN_JOB_TASK, celery_config
+from atomq_service.settings import get_settings
+from atomq_workers import execute
+
+settings = get_settings()
+app = Celery("atomq-workers")
+app.conf.update(celery_config(settings.broker_url or "memory://"))
+
+
+@lru_cache
+def engine() -> Engine:
+    return make_engine(settings.resolved_database_url)
+
+
+@worker_process_init.connect
+def _fresh_engine_per_child(**_kwargs: object) -> None:
+    # Connections must not cross fork(); each prefork child opens its own.
+    engine.cache_clear()
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+
+@app.task(name=RUN_JOB_TASK, acks_late=True, reject_on_worker_lost=True)
+def run_job(job_id: int) -> str:
+    return execute.run_job(engine(), int(job_id), settings.progress_interval_s)
