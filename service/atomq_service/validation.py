@@ -33,6 +33,7 @@ def check_job(job: JobCreate, calculator: Calculator, settings: Settings) -> Non
             f"{settings.max_steps} (ATOMQ_MAX_STEPS)",
         )
     check_elements(structure, calculator)
+    check_magnitudes(structure)
     check_cell(structure)
     if isinstance(job.task, Relax) and job.task.cell is not None and not all(structure.pbc):
         raise ApiError(
@@ -54,6 +55,24 @@ def check_elements(structure: Structure, calculator: Calculator) -> None:
             "element_not_covered",
             f"calculator {calculator.ref} does not cover {', '.join(missing)}; "
             f"it covers {', '.join(sorted(covered))}",
+        )
+
+
+# Beyond a micrometre a structure is no longer atomistic; such values are unit mistakes,
+# and they overflow the neighbour search.
+MAX_LENGTH = 1e4
+
+
+def check_magnitudes(structure: Structure) -> None:
+    largest_cell = float(np.abs(np.array(structure.cell)).max())
+    largest_position = float(np.abs(np.array(structure.positions)).max())
+    if max(largest_cell, largest_position) > MAX_LENGTH:
+        what = "cell vector" if largest_cell >= largest_position else "position"
+        raise ApiError(
+            422,
+            "length_out_of_range",
+            f"a {what} component is {max(largest_cell, largest_position):.3g} Angstrom; "
+            f"lengths above {MAX_LENGTH:g} Angstrom (1 micrometre) are refused: check units",
         )
 
 
@@ -80,6 +99,19 @@ def check_distances(structure: Structure, min_distance: float) -> None:
     if structure.natoms < 2 and not any(structure.pbc):
         return
     atoms = structure.to_atoms()
+    # A periodic cell thinner than the threshold puts every atom next to its own images;
+    # refuse it before a neighbour search whose cost grows as (threshold / thickness)^3.
+    heights = atoms.cell.reciprocal().lengths()
+    for axis in np.flatnonzero(atoms.pbc):
+        thickness = 1.0 / heights[axis]
+        if thickness < min_distance:
+            raise ApiError(
+                422,
+                "atoms_too_close",
+                f"the cell is only {thickness:.3g} Angstrom thick along {'abc'[axis]}, so atoms "
+                f"are closer than {min_distance} Angstrom to their own periodic images; "
+                "check the cell (Angstrom) or set pbc=False",
+            )
     first, second, distance = neighbor_list("ijd", atoms, min_distance, self_interaction=False)
     if len(distance):
         k = int(np.argmin(distance))
