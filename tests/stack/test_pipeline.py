@@ -6,6 +6,8 @@ named beside the check.
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pytest
 from ase import Atoms
@@ -163,7 +165,7 @@ def test_cancel_running_job_stops_it_at_a_step(redis_stack: Stack) -> None:
             atoms, Relax(optimizer="FIRE", fmax=1e-9, max_steps=100_000), calculator="emt"
         )
         while job.status() is JobState.queued:
-            pass
+            time.sleep(0.05)
         job.cancel()
         info = job.wait(timeout=60)
         assert info.state is JobState.cancelled
