@@ -71,7 +71,7 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
     import redis
 
     # Messages left in the broker by an earlier test name job ids of another database.
-    redis.Redis.from_url(broker_url).flushdb()
+    redis.Redis.from_url(broker_url.replace("redis+socket://", "unix://")).flushdb()
     data_dir = tmp_path / "data"
     data_dir.mkdir(exist_ok=True)
     engine = make_engine(database_url)
