@@ -150,7 +150,7 @@ class Job:
         """
         deadline = None if timeout is None else time.monotonic() + timeout
         out = stream or sys.stderr
-        interval = min(poll_interval, 0.05)  # start fast: small jobs finish in milliseconds
+        interval = min(poll_interval, 0.005)  # start fast: small jobs finish in milliseconds
         while True:
             info = self.info()
             if progress:

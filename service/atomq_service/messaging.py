@@ -22,6 +22,12 @@ def queue_name(calculator_ref: str) -> str:
 
 
 def celery_config(broker_url: str) -> dict[str, Any]:
+    if broker_url.startswith("sqla+"):
+        # kombu's SQL transport polls once a second by default. The interval must be set
+        # on the Transport class: passing it in broker_transport_options crashes.
+        from kombu.transport.sqlalchemy import Transport
+
+        Transport.polling_interval = 0.05
     return {
         "broker_url": broker_url,
         "task_serializer": "json",

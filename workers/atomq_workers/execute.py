@@ -43,35 +43,39 @@ class Cancelled(Exception):
 
 
 class ProgressWriter:
-    """Writes progress to the job row at most every `interval_s`, and notices cancel requests."""
+    """Writes progress to the job row at most every `interval_s` (the first report at once),
+    and notices cancel requests when it writes."""
 
     def __init__(self, engine: Engine, job_id: int, interval_s: float) -> None:
         self.engine = engine
         self.job_id = job_id
         self.interval_s = interval_s
-        self.last_write = time.monotonic()
+        self.last_write = -float("inf")
         self.step = 0
+        self.latest: dict[str, object] | None = None
 
     def __call__(
         self, step: int, total_steps: int, energy: float | None, fmax: float | None
     ) -> None:
         self.step = step
+        self.latest = {"step": step, "total_steps": total_steps, "energy": energy, "fmax": fmax}
         now = time.monotonic()
         if now - self.last_write < self.interval_s:
             return
         self.last_write = now
-        progress = {
-            "step": step,
-            "total_steps": total_steps,
-            "energy": energy,
-            "fmax": fmax,
-            "updated_at": utcnow().isoformat(),
-        }
         with transaction(self.engine) as session:
-            session.execute(update(Job).where(col(Job.id) == self.job_id).values(progress=progress))
-            cancel = session.get(Job, self.job_id)
-            if cancel is not None and cancel.cancel_requested:
+            session.execute(
+                update(Job).where(col(Job.id) == self.job_id).values(progress=self.snapshot())
+            )
+            job = session.get(Job, self.job_id)
+            if job is not None and job.cancel_requested:
                 raise Cancelled(step)
+
+    def snapshot(self) -> dict[str, object] | None:
+        """The latest report, stamped now; stored with the final state so it is never stale."""
+        if self.latest is None:
+            return None
+        return {**self.latest, "updated_at": utcnow().isoformat()}
 
 
 def claim(engine: Engine, job_id: int) -> bool:
@@ -115,11 +119,11 @@ def run_job(engine: Engine, job_id: int, progress_interval_s: float = 1.0) -> st
         atoms = structure.to_atoms()
         result = run_task(atoms, loaded.calculator, task, report)
     except Cancelled as stop:
-        return _finish(engine, job_id, JobState.cancelled, f"cancelled at step {stop.step}")
+        return _finish(engine, job_id, JobState.cancelled, f"cancelled at step {stop.step}", report)
     except Exception as exc:  # the job failed; the worker lives on
         log.exception("job %s failed", job_id)
         reason = f"{type(exc).__name__}: {exc} (at step {report.step})"
-        return _finish(engine, job_id, JobState.failed, reason)
+        return _finish(engine, job_id, JobState.failed, reason, report)
     provenance = Provenance(
         job_id=job_id,
         owner=owner.name,
@@ -136,11 +140,15 @@ def run_job(engine: Engine, job_id: int, progress_interval_s: float = 1.0) -> st
         finished_at=utcnow(),
         **environment(loaded.backend.package),  # type: ignore[arg-type]
     )
-    return _store_result(engine, job_id, result.model_dump(mode="json"), provenance)
+    return _store_result(engine, job_id, result.model_dump(mode="json"), provenance, report)
 
 
 def _store_result(
-    engine: Engine, job_id: int, result: dict[str, object], provenance: Provenance
+    engine: Engine,
+    job_id: int,
+    result: dict[str, object],
+    provenance: Provenance,
+    report: ProgressWriter,
 ) -> str:
     with transaction(engine) as session:
         if session.get(JobResult, job_id) is not None:
@@ -152,17 +160,26 @@ def _store_result(
         session.execute(
             update(Job)
             .where(col(Job.id) == job_id)
-            .values(state=JobState.succeeded.value, finished_at=provenance.finished_at, error=None)
+            .values(
+                state=JobState.succeeded.value,
+                finished_at=provenance.finished_at,
+                error=None,
+                progress=report.snapshot(),
+            )
         )
     return JobState.succeeded.value
 
 
-def _finish(engine: Engine, job_id: int, state: JobState, reason: str) -> str:
+def _finish(
+    engine: Engine, job_id: int, state: JobState, reason: str, report: ProgressWriter
+) -> str:
     finished: datetime = utcnow()
     with transaction(engine) as session:
         session.execute(
             update(Job)
             .where(col(Job.id) == job_id, col(Job.state) == JobState.running.value)
-            .values(state=state.value, finished_at=finished, error=reason)
+            .values(
+                state=state.value, finished_at=finished, error=reason, progress=report.snapshot()
+            )
         )
     return state.value
