@@ -100,3 +100,23 @@ def _healthy(port: int) -> bool:
         return httpx.get(f"http://127.0.0.1:{port}/v1/health", timeout=1).status_code == 200
     except httpx.HTTPError:
         return False
+
+
+def test_sql_broker_fallback_runs_jobs(tmp_path: Path) -> None:
+    """Where no Redis can be had, the embedded stack falls back to kombu's SQL transport."""
+    from atomq_service.embedded import EmbeddedStack
+    from atomq_service.settings import Settings
+
+    settings = Settings(
+        data_dir=tmp_path, broker_url=f"sqla+sqlite:///{tmp_path / 'broker.sqlite'}"
+    )
+    atoms = bulk("Cu", "fcc", a=3.6)
+    reference = atoms.copy()
+    reference.calc = EMT()
+    with (
+        EmbeddedStack(settings, port=free_port(), workers=1, quiet=True) as stack,
+        Client(stack.url, stack.token) as client,
+    ):
+        result = client.submit(atoms, SinglePoint(), calculator="emt").result(timeout=120)
+    # Reference: ASE's EMT in this process.
+    assert result.energy == reference.get_potential_energy()

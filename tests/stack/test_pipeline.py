@@ -164,12 +164,19 @@ def test_cancel_running_job_stops_it_at_a_step(redis_stack: Stack) -> None:
         job = client.submit(
             atoms, Relax(optimizer="FIRE", fmax=1e-9, max_steps=100_000), calculator="emt"
         )
-        while job.status() is JobState.queued:
+        while (info := job.info()).progress is None or info.progress.step < 2:
+            assert not info.state.finished, info.error
             time.sleep(0.05)
+        # Live progress: step, total steps, energy and fmax of the running relaxation.
+        assert info.state is JobState.running
+        assert info.progress.total_steps == 100_000
+        assert info.progress.energy is not None and info.progress.fmax is not None
         job.cancel()
         info = job.wait(timeout=60)
         assert info.state is JobState.cancelled
         assert info.error is not None and info.error.startswith("cancelled at step")
+        assert info.progress is not None
+        assert info.error == f"cancelled at step {info.progress.step}"
         with pytest.raises(atomq.JobFailed, match="cancelled"):
             job.result()
         # The worker survives and takes the next job.
