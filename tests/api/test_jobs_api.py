@@ -245,7 +245,7 @@ BAD_INPUTS: dict[str, BadInput] = {
         code="atoms_too_close",
     ),
     "position in the wrong unit": BadInput(
-        # 2 cm written as metres-to-Angstrom by mistake; nothing atomistic is 1e4 A long.
+        # 2e8 Angstrom is 2 cm: a unit slip, not an atomistic length.
         job_body(structure(positions=[[0, 0, 0], [2e8, 0, 0]])),
         ["a position component is 2e+08 Angstrom", "check units"],
         code="length_out_of_range",
