@@ -109,24 +109,30 @@ class Structure(BaseModel):
     def from_atoms(cls, atoms: Atoms) -> Structure:
         """Capture an ase.Atoms; raises StructureError for what cannot travel losslessly."""
         constraints: list[Constraint] = []
+        n = len(atoms)
         for c in atoms.constraints:
-            if isinstance(c, FixAtoms):
-                constraints.append(FixAtomsConstraint(indices=[int(i) for i in c.index]))
-            elif isinstance(c, FixCartesian):
-                mask = tuple(bool(m) for m in c.mask)
-                constraints.append(
-                    FixCartesianConstraint(
-                        indices=[int(i) for i in c.index], mask=(mask[0], mask[1], mask[2])
-                    )
-                )
-            else:
+            if not isinstance(c, FixAtoms | FixCartesian):
                 raise StructureError(
                     f"constraint {type(c).__name__} cannot be sent; "
                     "supported are FixAtoms and FixCartesian"
                 )
+            # ASE accepts negative indices (counted from the end); send the atom they mean.
+            indices = [int(i) % n if -n <= int(i) < 0 else int(i) for i in c.index]
+            if isinstance(c, FixAtoms):
+                constraints.append(FixAtomsConstraint(indices=indices))
+            else:
+                mask = tuple(bool(m) for m in c.mask)
+                constraints.append(
+                    FixCartesianConstraint(indices=indices, mask=(mask[0], mask[1], mask[2]))
+                )
         info: dict[str, JsonValue] = {}
         for key, value in atoms.info.items():
-            info[str(key)] = _json_safe(key, value)
+            if not isinstance(key, str):
+                raise StructureError(
+                    f"atoms.info key {key!r} is not a string and would change on the wire; "
+                    "use string keys"
+                )
+            info[key] = _json_safe(key, value)
         magmoms = atoms.get_initial_magnetic_moments()
         if magmoms.ndim != 1:
             raise StructureError("non-collinear magnetic moments are not supported yet")

@@ -100,7 +100,9 @@ def list_jobs(
         if "@" in calculator:
             query = query.where(Job.calculator_ref == calculator)
         else:
-            query = query.where(col(Job.calculator_ref).startswith(calculator + "@"))
+            query = query.where(
+                col(Job.calculator_ref).startswith(calculator + "@", autoescape=True)
+            )
     if kind is not None:
         query = query.where(Job.kind == kind)
     if tag is not None:

@@ -101,9 +101,7 @@ def check_distances(structure: Structure, min_distance: float) -> None:
     atoms = structure.to_atoms()
     # A periodic cell thinner than the threshold puts every atom next to its own images;
     # refuse it before a neighbour search whose cost grows as (threshold / thickness)^3.
-    heights = atoms.cell.reciprocal().lengths()
-    for axis in np.flatnonzero(atoms.pbc):
-        thickness = 1.0 / heights[axis]
+    for axis, thickness in periodic_thickness(np.array(structure.cell), structure.pbc):
         if thickness < min_distance:
             raise ApiError(
                 422,
@@ -124,3 +122,19 @@ def check_distances(structure: Structure, min_distance: float) -> None:
             f"atom {i} ({symbols[i]}) and {what} are {distance[k]:.3f} Angstrom apart, "
             f"closer than {min_distance} Angstrom; check units (Angstrom) and duplicated atoms",
         )
+
+
+def periodic_thickness(cell: np.ndarray, pbc: tuple[bool, bool, bool]) -> list[tuple[int, float]]:
+    """For each periodic axis, the distance from its cell vector to the span of the other
+    periodic vectors: the spacing of the lattice planes that repeat along that axis.
+    Non-periodic vectors play no part (they do not repeat the atoms)."""
+    periodic = [axis for axis in range(3) if pbc[axis]]
+    result = []
+    for axis in periodic:
+        others = cell[[a for a in periodic if a != axis]]
+        vector = cell[axis]
+        if len(others):
+            coefficients, *_ = np.linalg.lstsq(others.T, vector, rcond=None)
+            vector = vector - others.T @ coefficients
+        result.append((axis, float(np.linalg.norm(vector))))
+    return result

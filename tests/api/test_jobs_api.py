@@ -389,14 +389,6 @@ def test_tiny_periodic_cell_is_refused_without_a_neighbour_search(
     assert app.counts() == before
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="validation.py check_distances measures thickness with the full 3D "
-    "cell.reciprocal(), so a non-periodic cell vector that leans towards a periodic one "
-    "makes the periodic axis look thin: a Cu chain periodic along a (2.5 Angstrom, whose "
-    "nearest image is 2.5 Angstrom away by ASE's neighbor_list) with b=(2.4, 0.3, 0) "
-    "non-periodic is refused as 'only 0.31 Angstrom thick along a'",
-)
 def test_non_periodic_cell_vectors_do_not_make_a_chain_too_thin(app: App) -> None:
     chain = Atoms(
         "Cu",
@@ -604,12 +596,6 @@ def test_bad_list_parameters_are_named(app: App, params: dict[str, Any], fragmen
     assert fragment in response.json()["detail"]
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="jobs.py list_jobs filters a bare calculator name with "
-    "col(Job.calculator_ref).startswith(name + '@'), a SQL LIKE without escaping, so '_' "
-    "and '%' in the name are wildcards: calculator=lj_ar also lists the jobs of lj-ar",
-)
 def test_calculator_filter_treats_underscore_literally(app: App) -> None:
     with transaction(app.engine) as session:
         for name in ("lj-ar", "lj_ar"):

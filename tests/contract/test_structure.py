@@ -166,12 +166,6 @@ def test_info_that_is_not_json_safe_is_refused_by_key(value: Any, type_name: str
         assert "would change on the wire" in str(caught.value)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="structure.py from_atoms: top-level info keys go through str(key), so "
-    "atoms.info = {1: 'a'} arrives as {'1': 'a'} with no StructureError, although nested "
-    "non-string keys are refused as 'would change on the wire'",
-)
 def test_non_string_top_level_info_key_is_refused() -> None:
     atoms = Atoms("Cu", info={1: "a"})
     with pytest.raises(StructureError, match="1"):
@@ -188,13 +182,6 @@ def test_unsupported_constraint_is_refused_by_name() -> None:
     assert "supported are FixAtoms and FixCartesian" in str(caught.value)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="structure.py from_atoms copies c.index unchanged, so ASE's FixAtoms(indices=[-1]) "
-    "(which ASE applies to the last atom) reaches the Structure validator and fails with a "
-    "pydantic ValidationError 'FixAtoms names atom index -1' instead of travelling as index "
-    "n-1 (or raising StructureError as the docstring promises)",
-)
 def test_negative_constraint_index_travels_as_the_atom_ase_means() -> None:
     atoms = Atoms("Cu3", positions=[(0, 0, 0), (2.5, 0, 0), (5, 0, 0)])
     atoms.set_constraint(FixAtoms(indices=[-1]))
