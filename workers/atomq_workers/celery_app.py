@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 from functools import lru_cache
 
 from celery import Celery
@@ -28,7 +27,6 @@ def engine() -> Engine:
 def _fresh_engine_per_child(**_kwargs: object) -> None:
     # Connections must not cross fork(); each prefork child opens its own.
     engine.cache_clear()
-    os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 
 @app.task(name=RUN_JOB_TASK, acks_late=True, reject_on_worker_lost=True)

@@ -18,7 +18,6 @@ from pydantic import TypeAdapter
 from sqlalchemy import Engine, update
 from sqlmodel import col
 
-from atomq.hashing import input_hash
 from atomq.jobs import JobState
 from atomq.results import Provenance
 from atomq.structure import Structure
@@ -127,7 +126,7 @@ def run_job(engine: Engine, job_id: int, progress_interval_s: float = 1.0) -> st
     provenance = Provenance(
         job_id=job_id,
         owner=owner.name,
-        input_hash=input_hash(structure, task, record.ref, job.seed),
+        input_hash=job.input_hash,
         calculator=record.ref,
         backend=record.backend,
         parameters=record.parameters,
