@@ -16,13 +16,24 @@ from atomq.errors import (
     ServerError,
 )
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
-from atomq.results import Provenance, RelaxResult, Result, SinglePointResult
+from atomq.results import (
+    ArtifactRecord,
+    MDResult,
+    NEBResult,
+    Provenance,
+    RelaxResult,
+    Result,
+    SinglePointResult,
+)
 from atomq.structure import Structure, StructureError
-from atomq.tasks import CellRelax, Relax, SinglePoint, TaskSpec
+from atomq.tasks import MD, NEB, CellRelax, JobReference, Relax, SinglePoint, TaskSpec
 
 __version__ = "0.1.0"
 
 __all__ = [
+    "MD",
+    "NEB",
+    "ArtifactRecord",
     "AtomqError",
     "AuthenticationFailed",
     "CalculatorPublic",
@@ -35,7 +46,10 @@ __all__ = [
     "JobFailed",
     "JobPage",
     "JobPublic",
+    "JobReference",
     "JobState",
+    "MDResult",
+    "NEBResult",
     "NotFound",
     "Provenance",
     "Relax",

@@ -2,21 +2,33 @@
 
 from __future__ import annotations
 
+import hashlib
 import sys
+import tempfile
 import time
-from typing import Any, TextIO
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any, Literal, TextIO, overload
 
+import ase.io
 import httpx
 from ase import Atoms
 from ase.calculators.singlepoint import SinglePointCalculator
 from pydantic import TypeAdapter
 
 from atomq import config
-from atomq.errors import AuthenticationFailed, InvalidRequest, JobFailed, NotFound, ServerError
+from atomq.errors import (
+    AtomqError,
+    AuthenticationFailed,
+    InvalidRequest,
+    JobFailed,
+    NotFound,
+    ServerError,
+)
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
-from atomq.results import Provenance, Result
+from atomq.results import ArtifactRecord, Provenance, Result
 from atomq.structure import Structure
-from atomq.tasks import Relax, SinglePoint
+from atomq.tasks import Task
 
 _result_adapter: TypeAdapter[Result] = TypeAdapter(Result)
 
@@ -63,15 +75,27 @@ class Client:
     # -- jobs -----------------------------------------------------------------
     def submit(
         self,
-        atoms: Atoms | Structure,
-        task: SinglePoint | Relax,
+        atoms: Atoms | Structure | None,
+        task: Task,
         *,
         calculator: str,
         tags: list[str] | None = None,
+        time_limit_s: float | None = None,
     ) -> Job:
-        """Queue one calculation; returns at once with a Job handle."""
-        structure = atoms if isinstance(atoms, Structure) else Structure.from_atoms(atoms)
-        body = JobCreate(structure=structure, task=task, calculator=calculator, tags=tags or [])
+        """Queue one calculation; returns at once with a Job handle.
+
+        For NEB pass atoms=None: the endpoints are part of the task.
+        """
+        structure = (
+            atoms if atoms is None or isinstance(atoms, Structure) else Structure.from_atoms(atoms)
+        )
+        body = JobCreate(
+            structure=structure,
+            task=task,
+            calculator=calculator,
+            tags=tags or [],
+            time_limit_s=time_limit_s,
+        )
         response = self.request(
             "POST",
             "/v1/jobs",
@@ -194,6 +218,70 @@ class Job:
         response = self.client.request("GET", f"/v1/jobs/{self.id}/provenance")
         return Provenance.model_validate_json(response.content)
 
+    def follow(self) -> Iterator[JobPublic]:
+        """Yield the job's record each time it changes, until it finishes (server-sent
+        events: no polling from the client)."""
+        with self.client._http.stream(
+            "GET", f"/v1/jobs/{self.id}/events", timeout=None
+        ) as response:
+            if response.status_code >= 400:
+                response.read()
+                raise _error_from(response)
+            event = None
+            for line in response.iter_lines():
+                if line.startswith("event:"):
+                    event = line.split(":", 1)[1].strip()
+                elif line.startswith("data:") and event == "job":
+                    self._info = JobPublic.model_validate_json(line.split(":", 1)[1])
+                    yield self._info
+                elif line.startswith("data:") and event == "end":
+                    return
+
+    def artifacts(self) -> list[ArtifactRecord]:
+        """Files the job wrote (trajectory, thermo log, NEB images), with size and sha256."""
+        response = self.client.request("GET", f"/v1/jobs/{self.id}/artifacts")
+        return [ArtifactRecord.model_validate(item) for item in response.json()]
+
+    def download(self, name: str, path: str | Path) -> Path:
+        """Stream one artifact to `path` and check its sha256 against the record."""
+        record = next((a for a in self.artifacts() if a.name == name), None)
+        if record is None:
+            names = ", ".join(a.name for a in self.artifacts()) or "none"
+            raise NotFound(404, f"job {self.id} has no artifact {name!r} (it has: {names})")
+        path = Path(path)
+        digest = hashlib.sha256()
+        with self.client._http.stream("GET", f"/v1/artifacts/{record.id}") as response:
+            if response.status_code >= 400:
+                response.read()
+                raise _error_from(response)
+            with path.open("wb") as handle:
+                for chunk in response.iter_bytes():
+                    digest.update(chunk)
+                    handle.write(chunk)
+        if digest.hexdigest() != record.sha256:
+            raise AtomqError(f"artifact {record.id} arrived with a different sha256 than recorded")
+        return path
+
+    @overload
+    def trajectory(self, *, lazy: Literal[False] = False, name: str = ...) -> list[Atoms]: ...
+    @overload
+    def trajectory(self, *, lazy: Literal[True], name: str = ...) -> Iterator[Atoms]: ...
+
+    def trajectory(
+        self, *, lazy: bool = False, name: str = "trajectory.extxyz"
+    ) -> list[Atoms] | Iterator[Atoms]:
+        """The MD frames (or NEB images, name='images.extxyz') as ase.Atoms, each with a
+        SinglePointCalculator. lazy=True streams the file to disk and yields frames one by
+        one instead of holding them all."""
+        if lazy:
+            return self._iter_frames(name)
+        return list(self._iter_frames(name))
+
+    def _iter_frames(self, name: str) -> Iterator[Atoms]:
+        with tempfile.TemporaryDirectory(prefix="atomq-") as scratch:
+            path = self.download(name, Path(scratch) / name)
+            yield from ase.io.iread(path, index=":", format="extxyz")
+
     def cancel(self) -> JobPublic:
         """Ask the service to stop the job; a running job stops at its next step."""
         response = self.client.request("POST", f"/v1/jobs/{self.id}/cancel")
@@ -213,6 +301,8 @@ def _progress_line(info: JobPublic) -> str:
         parts.append(f"E={p.energy:.6f} eV")
     if p.fmax is not None:
         parts.append(f"fmax={p.fmax:.4f} eV/A")
+    if p.temperature_K is not None:
+        parts.append(f"T={p.temperature_K:.1f} K")
     return " ".join(parts)
 
 

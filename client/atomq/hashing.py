@@ -7,12 +7,10 @@ import hashlib
 import json
 
 from atomq.structure import Structure
-from atomq.tasks import Relax, SinglePoint
+from atomq.tasks import Task
 
 
-def input_hash(
-    structure: Structure, task: SinglePoint | Relax, calculator_ref: str, seed: int | None
-) -> str:
+def input_hash(structure: Structure, task: Task, calculator_ref: str, seed: int | None) -> str:
     document = {
         "structure": structure.model_dump(mode="json"),
         "task": task.model_dump(mode="json"),

@@ -5,10 +5,10 @@ from __future__ import annotations
 from datetime import datetime
 from enum import StrEnum
 
-from pydantic import BaseModel, ConfigDict, Field, JsonValue
+from pydantic import BaseModel, ConfigDict, Field, JsonValue, model_validator
 
 from atomq.structure import Structure
-from atomq.tasks import TaskSpec
+from atomq.tasks import NEB, TaskSpec
 
 
 class JobState(StrEnum):
@@ -24,23 +24,40 @@ class JobState(StrEnum):
 
 
 class JobCreate(BaseModel):
-    """What a user submits."""
+    """What a user submits. `structure` is required except for NEB, whose endpoints are
+    part of the task."""
 
     model_config = ConfigDict(extra="forbid")
-    structure: Structure
+    structure: Structure | None = None
     task: TaskSpec
     calculator: str = Field(
         description="A registered calculator: 'name' pins the newest version, "
         "'name@version' an exact one."
     )
     tags: list[str] = Field(default_factory=list, max_length=32)
+    time_limit_s: float | None = Field(
+        default=None, gt=0, description="Wall-time limit; at most the service's own limit."
+    )
+
+    @model_validator(mode="after")
+    def _structure_matches_task(self) -> JobCreate:
+        if isinstance(self.task, NEB):
+            if self.structure is not None:
+                raise ValueError(
+                    "an NEB job takes its structures from task.initial and task.final; "
+                    "leave `structure` out"
+                )
+        elif self.structure is None:
+            raise ValueError(f"a {self.task.kind} job needs a structure")
+        return self
 
 
 class Progress(BaseModel):
     step: int
     total_steps: int
-    energy: float | None = None
-    fmax: float | None = None
+    energy: float | None = Field(default=None, description="eV")
+    fmax: float | None = Field(default=None, description="eV/Angstrom")
+    temperature_K: float | None = None
     updated_at: datetime
 
 
@@ -58,6 +75,8 @@ class JobPublic(BaseModel):
     formula: str
     input_hash: str
     attempts: int
+    parents: list[int] = Field(default_factory=list, description="Jobs whose results it used.")
+    time_limit_s: float
     created_at: datetime
     started_at: datetime | None
     finished_at: datetime | None

@@ -45,12 +45,104 @@ class RelaxResult(BaseModel):
     trace: list[RelaxStep] = Field(description="Energy and fmax after every step (step 0 first).")
 
 
-Result = Annotated[SinglePointResult | RelaxResult, Field(discriminator="kind")]
+class ThermoRow(BaseModel):
+    step: int
+    time_fs: float
+    temperature_K: float
+    potential_energy: float = Field(description="eV")
+    kinetic_energy: float = Field(description="eV")
+    total_energy: float = Field(description="eV")
+    pressure_GPa: float | None = Field(default=None, description="Periodic structures only.")
+    volume: float | None = Field(default=None, description="Angstrom^3, periodic only.")
+
+
+class RadialDistribution(BaseModel):
+    pair: tuple[str, str]
+    r: list[float] = Field(description="Bin centres, Angstrom.")
+    g: list[float] = Field(description="g(r), dimensionless, averaged over the frames.")
+
+
+class MeanSquaredDisplacement(BaseModel):
+    element: str
+    time_fs: list[float]
+    msd: list[float] = Field(description="Angstrom^2, centre-of-mass drift removed.")
+    diffusion_coefficient_A2_per_ps: float = Field(
+        description="Einstein relation D = slope / 6 over the fit window."
+    )
+    diffusion_coefficient_cm2_per_s: float
+    fit_window_fs: tuple[float, float]
+
+
+class MDAnalysis(BaseModel):
+    """Computed by the worker from the thermo rows and sampled frames."""
+
+    analysis_window_fs: tuple[float, float] = Field(
+        description="Averages and fits use the rows and frames in this time window."
+    )
+    temperature_mean_K: float
+    temperature_std_K: float
+    energy_drift_meV_per_atom_per_ps: float | None = Field(
+        default=None, description="NVE only: slope of a straight-line fit of the total energy."
+    )
+    energy_max_deviation_meV_per_atom: float | None = Field(
+        default=None, description="NVE only: largest |E_total - E_total(0)|."
+    )
+    rdf: list[RadialDistribution] = Field(default_factory=list)
+    msd: list[MeanSquaredDisplacement] = Field(default_factory=list)
+    density_mean_g_per_cm3: float | None = Field(default=None, description="Periodic only.")
+    volume_mean_A3: float | None = None
+    cell_lengths_mean_A: tuple[float, float, float] | None = Field(default=None, description="NPT.")
+    cell_angles_mean_deg: tuple[float, float, float] | None = Field(
+        default=None, description="NPT."
+    )
+
+
+class MDResult(BaseModel):
+    kind: Literal["md"] = "md"
+    energy: float = Field(description="Potential energy of the final frame, eV.")
+    forces: list[Vec3]
+    stress: Voigt6 | None = None
+    structure: Structure = Field(description="The final frame, momenta included.")
+    steps: int
+    seed: int
+    thermo: list[ThermoRow]
+    analysis: MDAnalysis
+
+
+class NEBImage(BaseModel):
+    index: int
+    path_coordinate: float = Field(description="Distance along the band, Angstrom.")
+    energy: float = Field(description="eV")
+
+
+class NEBResult(BaseModel):
+    kind: Literal["neb"] = "neb"
+    energy: float = Field(description="Energy of the highest image, eV.")
+    forces: list[Vec3] = Field(description="Forces on the highest image.")
+    stress: Voigt6 | None = None
+    structure: Structure = Field(description="The highest image.")
+    highest_image: int
+    forward_barrier: float = Field(description="E(highest) - E(initial), eV.")
+    reverse_barrier: float = Field(description="E(highest) - E(final), eV.")
+    reaction_energy: float = Field(description="E(final) - E(initial), eV.")
+    profile: list[NEBImage]
+    converged: bool
+    steps: int
+
+
+Result = Annotated[
+    SinglePointResult | RelaxResult | MDResult | NEBResult, Field(discriminator="kind")
+]
+ResultModel = SinglePointResult | RelaxResult | MDResult | NEBResult
 
 
 class ArtifactRecord(BaseModel):
+    """A file a job wrote (a trajectory, a thermo log), fetched by id through the API."""
+
+    id: int
     name: str
-    size: int
+    media_type: str
+    size: int = Field(description="Bytes.")
     sha256: str
 
 

@@ -2,17 +2,21 @@
 
 from __future__ import annotations
 
+import secrets
 from collections import defaultdict
 from collections.abc import Sequence
+from pathlib import Path
 
 from sqlalchemy import func
 from sqlmodel import Session, col, select
 
 from atomq.hashing import input_hash
 from atomq.jobs import JobCreate, JobPage, JobPublic, JobState
+from atomq.structure import Structure
+from atomq.tasks import MD, NEB, JobReference
 from atomq_service import registry
 from atomq_service.errors import ApiError
-from atomq_service.models import Job, JobResult, JobTag, User, utcnow
+from atomq_service.models import Artifact, Job, JobResult, JobTag, User, utcnow
 from atomq_service.settings import Settings
 from atomq_service.validation import check_job
 
@@ -20,24 +24,51 @@ from atomq_service.validation import check_job
 def create_job(session: Session, owner: User, request: JobCreate, settings: Settings) -> Job:
     """Validate and record a job (state queued). Raises ApiError before writing anything."""
     calculator = registry.resolve(session, request.calculator)
-    check_job(request, calculator, settings)
+    task = request.task
+    parents: list[int] = []
+    if isinstance(task, NEB):
+        initial, initial_parent = resolve_endpoint(session, task.initial, "initial")
+        final, final_parent = resolve_endpoint(session, task.final, "final")
+        parents = [p for p in (initial_parent, final_parent) if p is not None]
+        # Store the structures themselves: the job must rerun identically even if the
+        # referenced jobs are ever removed, and the input hash must cover them.
+        task = task.model_copy(update={"initial": initial, "final": final})
+        structures = [initial, final]
+    else:
+        assert request.structure is not None  # JobCreate's own validator ensures it
+        structures = [request.structure]
+    if isinstance(task, MD) and task.seed is None:
+        # Drawn here and recorded, so every MD job can be rerun exactly.
+        task = task.model_copy(update={"seed": secrets.randbits(63)})
+    check_job(structures, task, calculator, settings)
+    time_limit_s = request.time_limit_s or settings.max_wall_time_s
+    if time_limit_s > settings.max_wall_time_s:
+        raise ApiError(
+            422,
+            "time_limit_too_long",
+            f"time_limit_s {request.time_limit_s:g} exceeds this service's limit of "
+            f"{settings.max_wall_time_s:g} s (ATOMQ_MAX_WALL_TIME_S)",
+        )
     tags = sorted(set(request.tags))
     for tag in tags:
         if not tag or len(tag) > 64:
             raise ApiError(422, "invalid_tag", f"tag {tag!r} must be 1 to 64 characters")
     assert owner.id is not None and calculator.id is not None
-    seed = None
+    seed = task.seed if isinstance(task, MD) else None
+    structure = structures[0]
     job = Job(
         owner_id=owner.id,
-        kind=request.task.kind,
+        kind=task.kind,
         calculator_id=calculator.id,
         calculator_ref=calculator.ref,
-        task=request.task.model_dump(mode="json"),
-        structure=request.structure.model_dump(mode="json"),
-        natoms=request.structure.natoms,
-        formula=request.structure.chemical_formula(),
-        input_hash=input_hash(request.structure, request.task, calculator.ref, seed),
+        task=task.model_dump(mode="json"),
+        structure=structure.model_dump(mode="json"),
+        natoms=structure.natoms,
+        formula=structure.chemical_formula(),
+        input_hash=input_hash(structure, task, calculator.ref, seed),
         seed=seed,
+        parents=parents,
+        time_limit_s=time_limit_s,
     )
     session.add(job)
     session.flush()
@@ -45,6 +76,26 @@ def create_job(session: Session, owner: User, request: JobCreate, settings: Sett
     for tag in tags:
         session.add(JobTag(job_id=job.id, tag=tag))
     return job
+
+
+def resolve_endpoint(
+    session: Session, endpoint: Structure | JobReference, which: str
+) -> tuple[Structure, int | None]:
+    """An inline structure, or the final structure of a finished job (then a parent)."""
+    if isinstance(endpoint, Structure):
+        return endpoint, None
+    job = session.get(Job, endpoint.job)
+    if job is None:
+        raise ApiError(422, "unknown_endpoint_job", f"NEB {which} endpoint: no job {endpoint.job}")
+    stored = session.get(JobResult, endpoint.job)
+    if job.state != JobState.succeeded.value or stored is None:
+        raise ApiError(
+            422,
+            "endpoint_job_unfinished",
+            f"NEB {which} endpoint: job {endpoint.job} is {job.state}; "
+            "an endpoint must be a job that succeeded",
+        )
+    return Structure.model_validate(stored.result["structure"]), endpoint.job
 
 
 def get_job(session: Session, job_id: int) -> Job:
@@ -136,3 +187,27 @@ def get_result(session: Session, job: Job) -> JobResult:
         reason = f": {job.error}" if job.error else ""
         raise ApiError(409, "no_result", f"job {job.id} is {state.value} and has no result{reason}")
     return stored
+
+
+def list_artifacts(session: Session, job: Job) -> Sequence[Artifact]:
+    return session.exec(
+        select(Artifact).where(Artifact.job_id == job.id).order_by(col(Artifact.id))
+    ).all()
+
+
+def artifact_file(session: Session, artifact_id: int, settings: Settings) -> tuple[Artifact, Path]:
+    """The file behind an artifact id. Paths come from the database, never from a client,
+    and must stay inside the artifact store."""
+    artifact = session.get(Artifact, artifact_id)
+    if artifact is None:
+        raise ApiError(404, "artifact_not_found", f"no artifact with id {artifact_id}")
+    store = settings.artifacts_dir.resolve()
+    path = (store / artifact.path).resolve()
+    if not path.is_relative_to(store) or not path.is_file():
+        raise ApiError(
+            410,
+            "artifact_missing",
+            f"artifact {artifact_id} ({artifact.name}) is recorded but its file is not in the "
+            "artifact store; check ATOMQ_ARTIFACT_STORE on the API machine",
+        )
+    return artifact, path

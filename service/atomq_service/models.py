@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import JSON, Column, DateTime, TypeDecorator, UniqueConstraint
+from sqlalchemy import JSON, BigInteger, Column, DateTime, TypeDecorator, UniqueConstraint
 from sqlmodel import Field, SQLModel
 
 
@@ -82,8 +82,13 @@ class Job(SQLModel, table=True):
     natoms: int
     formula: str
     input_hash: str = Field(index=True)
-    seed: int | None = None
+    seed: int | None = Field(default=None, sa_type=BigInteger)
+    parents: list[int] = Field(default_factory=list, sa_column=Column(JSON, nullable=False))
+    time_limit_s: float
     attempts: int = 0
+    # The running attempt holds a lease its worker renews; an expired lease means the
+    # worker died and another delivery may take the job over.
+    lease_expires_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
     cancel_requested: bool = False
     progress: dict[str, Any] | None = Field(default=None, sa_column=Column(JSON))
     error: str | None = None
@@ -96,6 +101,20 @@ class Job(SQLModel, table=True):
 class JobTag(SQLModel, table=True):
     job_id: int = Field(foreign_key="job.id", primary_key=True)
     tag: str = Field(primary_key=True, index=True)
+
+
+class Artifact(SQLModel, table=True):
+    """A file written by one attempt of a job; only the winning attempt's are recorded."""
+
+    id: int | None = Field(default=None, primary_key=True)
+    job_id: int = Field(foreign_key="job.id", index=True)
+    attempt: int
+    name: str
+    media_type: str
+    path: str  # relative to the artifact store; never chosen by a client
+    size: int
+    sha256: str
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
 
 
 class JobResult(SQLModel, table=True):

@@ -33,6 +33,17 @@ class Settings(BaseSettings):
     progress_interval_s: float = Field(
         default=1.0, description="Workers write progress at most this often."
     )
+    max_wall_time_s: float = Field(
+        default=7 * 24 * 3600.0, description="Wall-time limit of a job; users may ask for less."
+    )
+    max_attempts: int = Field(
+        default=3, ge=1, description="A job whose worker died this often ends failed."
+    )
+    lease_s: float = Field(
+        default=60.0,
+        description="A running job's lease; its worker renews it every lease_s / 4. A job "
+        "whose lease expired is taken over by the next delivery.",
+    )
 
     @property
     def resolved_database_url(self) -> str:
@@ -40,9 +51,15 @@ class Settings(BaseSettings):
             return self.database_url
         return f"sqlite:///{self.data_dir / 'atomq.db'}"
 
+    artifact_store: Path | None = Field(
+        default=None,
+        description="Where workers write trajectories; default data_dir/artifacts. Workers "
+        "on other machines need it on a shared filesystem at the same path.",
+    )
+
     @property
     def artifacts_dir(self) -> Path:
-        return self.data_dir / "artifacts"
+        return self.artifact_store or self.data_dir / "artifacts"
 
 
 @lru_cache

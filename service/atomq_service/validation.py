@@ -7,24 +7,18 @@ import numpy as np
 from ase.data import chemical_symbols
 from ase.neighborlist import neighbor_list
 
-from atomq.jobs import JobCreate
 from atomq.structure import Structure
-from atomq.tasks import Relax, task_steps
+from atomq.tasks import MD, NEB, Relax, Task, task_steps
 from atomq_service.errors import ApiError
 from atomq_service.models import Calculator
 from atomq_service.settings import Settings
 
 
-def check_job(job: JobCreate, calculator: Calculator, settings: Settings) -> None:
-    structure = job.structure
-    if structure.natoms > settings.max_atoms:
-        raise ApiError(
-            422,
-            "too_many_atoms",
-            f"structure has {structure.natoms} atoms; this service accepts at most "
-            f"{settings.max_atoms} (ATOMQ_MAX_ATOMS)",
-        )
-    steps = task_steps(job.task)
+def check_job(
+    structures: list[Structure], task: Task, calculator: Calculator, settings: Settings
+) -> None:
+    """Every structure the task will compute on (one, or the two NEB endpoints)."""
+    steps = task_steps(task)
     if steps > settings.max_steps:
         raise ApiError(
             422,
@@ -32,17 +26,110 @@ def check_job(job: JobCreate, calculator: Calculator, settings: Settings) -> Non
             f"task asks for {steps} steps; this service accepts at most "
             f"{settings.max_steps} (ATOMQ_MAX_STEPS)",
         )
+    for structure in structures:
+        check_structure(structure, calculator, settings)
+        if isinstance(task, Relax) and task.cell is not None and not all(structure.pbc):
+            raise ApiError(
+                422,
+                "cell_relax_needs_pbc",
+                "cell relaxation needs a structure periodic in all three directions; "
+                "set pbc=True or drop the `cell` option",
+            )
+        if isinstance(task, MD):
+            check_md(structure, task)
+    if isinstance(task, NEB):
+        check_endpoints(structures[0], structures[1])
+
+
+def check_structure(structure: Structure, calculator: Calculator, settings: Settings) -> None:
+    if structure.natoms > settings.max_atoms:
+        raise ApiError(
+            422,
+            "too_many_atoms",
+            f"structure has {structure.natoms} atoms; this service accepts at most "
+            f"{settings.max_atoms} (ATOMQ_MAX_ATOMS)",
+        )
     check_elements(structure, calculator)
     check_magnitudes(structure)
     check_cell(structure)
-    if isinstance(job.task, Relax) and job.task.cell is not None and not all(structure.pbc):
+    check_distances(structure, settings.min_distance)
+
+
+def check_md(structure: Structure, task: MD) -> None:
+    if task.ensemble == "npt" and not all(structure.pbc):
         raise ApiError(
             422,
-            "cell_relax_needs_pbc",
-            "cell relaxation needs a structure periodic in all three directions; "
-            "set pbc=True or drop the `cell` option",
+            "npt_needs_pbc",
+            "an npt run changes the cell, so the structure must be periodic in all three "
+            "directions; set pbc=True or use nve/nvt",
         )
-    check_distances(structure, settings.min_distance)
+    if task.initial_velocities == "from_structure" and structure.momenta is None:
+        raise ApiError(
+            422,
+            "no_velocities",
+            "initial_velocities is 'from_structure' but the structure carries no momenta; "
+            "set velocities on the atoms or use 'maxwell_boltzmann'",
+        )
+    present = {chemical_symbols[z] for z in structure.numbers}
+    for pair in task.rdf_pairs:
+        missing = [element for element in pair if element not in present]
+        if missing:
+            raise ApiError(
+                422,
+                "rdf_element_absent",
+                f"rdf pair {pair[0]}-{pair[1]}: no {missing[0]} atoms in the structure",
+            )
+    if task.rdf_pairs:
+        if not all(structure.pbc):
+            raise ApiError(
+                422,
+                "rdf_needs_pbc",
+                "radial distribution functions are normalised by the cell volume; "
+                "they need a structure periodic in all three directions",
+            )
+        thinnest = min(t for _, t in periodic_thickness(np.array(structure.cell), structure.pbc))
+        if task.rdf_rmax >= thinnest / 2:
+            raise ApiError(
+                422,
+                "rdf_rmax_too_large",
+                f"rdf_rmax {task.rdf_rmax} Angstrom must be below half the cell's smallest "
+                f"thickness ({thinnest / 2:.3f} Angstrom); lower it or use a larger cell",
+            )
+
+
+def check_endpoints(initial: Structure, final: Structure) -> None:
+    """NEB endpoints must describe the same atoms in the same order under the same
+    constraints and cell."""
+    if initial.natoms != final.natoms:
+        raise ApiError(
+            422,
+            "endpoints_differ",
+            f"NEB endpoints differ in atom count: initial has {initial.natoms}, "
+            f"final has {final.natoms}",
+        )
+    for index, (a, b) in enumerate(zip(initial.numbers, final.numbers, strict=True)):
+        if a != b:
+            raise ApiError(
+                422,
+                "endpoints_differ",
+                f"NEB endpoints differ in element order: atom {index} is "
+                f"{chemical_symbols[a]} in the initial and {chemical_symbols[b]} in the final "
+                "structure; give both endpoints the same atom order",
+            )
+    if initial.constraints != final.constraints:
+        raise ApiError(
+            422,
+            "endpoints_differ",
+            "NEB endpoints differ in constraints: "
+            f"initial {[c.model_dump() for c in initial.constraints]}, "
+            f"final {[c.model_dump() for c in final.constraints]}",
+        )
+    if initial.pbc != final.pbc or not np.allclose(initial.cell, final.cell, atol=1e-6):
+        raise ApiError(
+            422,
+            "endpoints_differ",
+            "NEB endpoints differ in cell or pbc; both must use the same cell",
+        )
 
 
 def check_elements(structure: Structure, calculator: Calculator) -> None:

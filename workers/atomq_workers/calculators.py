@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import hashlib
 from dataclasses import dataclass
 from pathlib import Path
 
 from ase.calculators.calculator import Calculator
 
 from atomq_service.models import Calculator as CalculatorRecord
+from atomq_workers.artifacts import sha256_of
 from atomq_workers.backends import Backend, load_backend
 
 
@@ -24,14 +24,6 @@ class LoadedCalculator:
 
 
 _cache: dict[str, LoadedCalculator] = {}
-
-
-def sha256_of(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def get_calculator(record: CalculatorRecord) -> LoadedCalculator:

@@ -4,12 +4,13 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Query, Request
+from fastapi.responses import FileResponse, StreamingResponse
 from sqlmodel import select
 
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
-from atomq.results import Provenance, Result
-from atomq_service import jobs
+from atomq.results import ArtifactRecord, Provenance, Result
+from atomq_service import events, jobs
 from atomq_service.api.deps import CurrentUser, DispatcherDep, SessionDep, SettingsDep
 from atomq_service.models import Calculator
 
@@ -84,6 +85,41 @@ def get_result(job_id: int, _user: CurrentUser, session: SessionDep) -> Any:
 @router.get("/jobs/{job_id}/provenance", tags=["results"], response_model=Provenance)
 def get_provenance(job_id: int, _user: CurrentUser, session: SessionDep) -> Any:
     return jobs.get_result(session, jobs.get_job(session, job_id)).provenance
+
+
+@router.get("/jobs/{job_id}/artifacts", tags=["results"])
+def list_artifacts(job_id: int, _user: CurrentUser, session: SessionDep) -> list[ArtifactRecord]:
+    return [
+        ArtifactRecord.model_validate(a, from_attributes=True)
+        for a in jobs.list_artifacts(session, jobs.get_job(session, job_id))
+    ]
+
+
+@router.get(
+    "/artifacts/{artifact_id}",
+    tags=["results"],
+    response_class=FileResponse,
+    responses={200: {"content": {"application/octet-stream": {}}}},
+)
+def download_artifact(
+    artifact_id: int, _user: CurrentUser, session: SessionDep, settings: SettingsDep
+) -> FileResponse:
+    artifact, path = jobs.artifact_file(session, artifact_id, settings)
+    return FileResponse(path, media_type=artifact.media_type, filename=artifact.name)
+
+
+@router.get(
+    "/jobs/{job_id}/events",
+    tags=["jobs"],
+    response_class=StreamingResponse,
+    responses={200: {"content": {"text/event-stream": {}}}},
+)
+def follow_job(job_id: int, _user: CurrentUser, session: SessionDep, request: Request) -> Any:
+    """Server-sent events: a `job` event with the job's record whenever it changes, until
+    it finishes; then an `end` event."""
+    jobs.get_job(session, job_id)  # 404 before the stream starts
+    engine = request.app.state.engine
+    return StreamingResponse(events.job_events(engine, job_id), media_type="text/event-stream")
 
 
 @router.get("/calculators", tags=["calculators"])

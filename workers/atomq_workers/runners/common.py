@@ -3,9 +3,18 @@
 from __future__ import annotations
 
 from ase import Atoms
+from ase.optimize import BFGS, FIRE, LBFGS, MDMin
+from ase.optimize.optimize import Optimizer
 
 from atomq.results import Voigt6
 from atomq.structure import Vec3
+
+OPTIMIZERS: dict[str, type[Optimizer]] = {
+    "BFGS": BFGS,
+    "LBFGS": LBFGS,
+    "FIRE": FIRE,
+    "MDMin": MDMin,
+}
 
 
 def has_stress(atoms: Atoms) -> bool:

@@ -7,18 +7,15 @@ from typing import Any
 import numpy as np
 from ase import Atoms
 from ase.filters import FrechetCellFilter
-from ase.optimize import BFGS, FIRE, LBFGS
-from ase.optimize.optimize import Optimizer
 
 from atomq.results import RelaxResult, RelaxStep
 from atomq.structure import Structure
 from atomq.tasks import Relax
-from atomq_workers.runners.common import read_properties
+from atomq_workers.runners import Reporter
+from atomq_workers.runners.common import OPTIMIZERS, read_properties
 
-OPTIMIZERS: dict[str, type[Optimizer]] = {"BFGS": BFGS, "LBFGS": LBFGS, "FIRE": FIRE}
 
-
-def run_relax(atoms: Atoms, task: Relax, report: Any) -> RelaxResult:
+def run_relax(atoms: Atoms, task: Relax, report: Reporter) -> RelaxResult:
     target: Any = atoms
     if task.cell is not None:
         target = FrechetCellFilter(
@@ -35,7 +32,7 @@ def run_relax(atoms: Atoms, task: Relax, report: Any) -> RelaxResult:
         energy = float(atoms.get_potential_energy())
         fmax = float(np.sqrt((target.get_forces() ** 2).sum(axis=1)).max())
         trace.append(RelaxStep(step=optimizer.nsteps, energy=energy, fmax=fmax))
-        report(optimizer.nsteps, task.max_steps, energy, fmax)
+        report(optimizer.nsteps, task.max_steps, energy=energy, fmax=fmax)
 
     optimizer.attach(observe, interval=1)
     converged = bool(optimizer.run(fmax=task.fmax, steps=task.max_steps))
