@@ -48,7 +48,7 @@ class JobCreate(BaseModel):
                     "leave `structure` out"
                 )
         elif self.structure is None:
-            raise ValueError(f"a {self.task.kind} job needs a structure")
+            raise ValueError(f"this {self.task.kind} job needs a structure")
         return self
 
 

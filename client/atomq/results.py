@@ -66,10 +66,11 @@ class MeanSquaredDisplacement(BaseModel):
     element: str
     time_fs: list[float]
     msd: list[float] = Field(description="Angstrom^2, centre-of-mass drift removed.")
-    diffusion_coefficient_A2_per_ps: float = Field(
-        description="Einstein relation D = slope / 6 over the fit window."
+    diffusion_coefficient_A2_per_ps: float | None = Field(
+        description="Einstein relation D = slope / 6 over the fit window; None when fewer "
+        "than two frames fall inside it."
     )
-    diffusion_coefficient_cm2_per_s: float
+    diffusion_coefficient_cm2_per_s: float | None
     fit_window_fs: tuple[float, float]
 
 

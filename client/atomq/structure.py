@@ -193,20 +193,32 @@ def _optional_array(atoms: Atoms, name: str) -> list[float] | None:
 
 
 def _json_safe(key: object, value: Any) -> JsonValue:
-    """Return value if it survives JSON unchanged, else explain which info key to fix."""
-    if isinstance(value, np.generic):
+    """info travels as JSON. numpy arrays and scalars and tuples become lists and numbers
+    (ASE itself stores arrays there, e.g. add_adsorbate's `adsorbate_info`); sets, objects,
+    non-finite floats and non-string keys are refused, naming the info key to fix."""
+    if isinstance(value, np.ndarray):
+        value = value.tolist()
+    elif isinstance(value, np.generic):
         value = value.item()
-    try:
-        text = json.dumps(value, allow_nan=False)
-    except (TypeError, ValueError) as exc:
-        raise StructureError(
-            f"atoms.info[{key!r}] is not JSON-safe ({type(value).__name__}); "
-            "convert it to numbers, strings, lists or dicts, or remove it"
-        ) from exc
-    decoded: JsonValue = json.loads(text)
-    if decoded != value:
-        raise StructureError(
-            f"atoms.info[{key!r}] would change on the wire (tuples become lists, "
-            "non-string keys become strings); store it as a list or string-keyed dict"
-        )
-    return decoded
+    if value is None or isinstance(value, bool | int | str):
+        return value
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise StructureError(f"atoms.info[{key!r}] is {value}; only finite numbers travel")
+        return value
+    if isinstance(value, list | tuple):
+        return [_json_safe(key, item) for item in value]
+    if isinstance(value, dict):
+        converted: dict[str, JsonValue] = {}
+        for inner_key, inner in value.items():
+            if not isinstance(inner_key, str):
+                raise StructureError(
+                    f"atoms.info[{key!r}] has the non-string key {inner_key!r}, which would "
+                    "change on the wire; use string keys"
+                )
+            converted[inner_key] = _json_safe(key, inner)
+        return converted
+    raise StructureError(
+        f"atoms.info[{key!r}] is not JSON-safe ({type(value).__name__}); "
+        "convert it to numbers, strings, lists or dicts, or remove it"
+    )

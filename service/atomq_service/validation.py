@@ -70,14 +70,23 @@ def check_md(structure: Structure, task: MD) -> None:
             "initial_velocities is 'from_structure' but the structure carries no momenta; "
             "set velocities on the atoms or use 'maxwell_boltzmann'",
         )
-    present = {chemical_symbols[z] for z in structure.numbers}
+    counts: dict[str, int] = {}
+    for z in structure.numbers:
+        counts[chemical_symbols[z]] = counts.get(chemical_symbols[z], 0) + 1
     for pair in task.rdf_pairs:
-        missing = [element for element in pair if element not in present]
+        missing = [element for element in pair if element not in counts]
         if missing:
             raise ApiError(
                 422,
                 "rdf_element_absent",
                 f"rdf pair {pair[0]}-{pair[1]}: no {missing[0]} atoms in the structure",
+            )
+        if pair[0] == pair[1] and counts[pair[0]] < 2:
+            raise ApiError(
+                422,
+                "rdf_element_absent",
+                f"rdf pair {pair[0]}-{pair[1]} needs at least two {pair[0]} atoms; "
+                f"the structure has one",
             )
     if task.rdf_pairs:
         if not all(structure.pbc):
@@ -124,7 +133,7 @@ def check_endpoints(initial: Structure, final: Structure) -> None:
             f"initial {[c.model_dump() for c in initial.constraints]}, "
             f"final {[c.model_dump() for c in final.constraints]}",
         )
-    if initial.pbc != final.pbc or not np.allclose(initial.cell, final.cell, atol=1e-6):
+    if initial.pbc != final.pbc or not np.allclose(initial.cell, final.cell, rtol=0, atol=1e-6):
         raise ApiError(
             422,
             "endpoints_differ",

@@ -15,9 +15,11 @@ from pathlib import Path
 import httpx
 import pytest
 from sqlalchemy import Engine
+from sqlmodel import Session
 
 from atomq import Client
 from atomq_service.db import create_schema, make_engine
+from atomq_service.models import Job
 from atomq_service.registry import seed_defaults
 from atomq_service.users import add_user
 from tests.conftest import free_port
@@ -59,6 +61,13 @@ class Stack:
                 process.wait()
         self.engine.dispose()
 
+    def worker_of(self, job_id: int) -> str:
+        """host:pid of the process running the job, as the database records it."""
+        with Session(self.engine) as session:
+            job = session.get(Job, job_id)
+            assert job is not None and job.worker is not None
+            return job.worker
+
     def logs(self) -> str:
         return "\n".join(
             f"--- {path.name}\n{path.read_text(errors='replace')[-4000:]}"
@@ -85,6 +94,8 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
         "ATOMQ_DATABASE_URL": database_url,
         "ATOMQ_BROKER_URL": broker_url,
         "ATOMQ_PROGRESS_INTERVAL_S": "0.1",
+        # A short lease, so a crashed attempt is taken over within seconds.
+        "ATOMQ_LEASE_S": "2",
     }
     log_dir = tmp_path / "logs"
     log_dir.mkdir(exist_ok=True)

@@ -128,17 +128,18 @@ def mean_squared_displacements(
     results = []
     for element, values in tracker.msd.items():
         msd = np.array(values)
-        slope = 0.0
+        d_a2_per_ps = d_cm2_per_s = None
         if chosen.sum() >= 2:
             slope = float(np.polyfit(times[chosen], msd[chosen], 1)[0])  # Angstrom^2 / fs
-        d_a2_per_ps = slope / 6.0 * 1000.0  # Einstein relation in 3D: MSD = 6 D t
+            d_a2_per_ps = slope / 6.0 * 1000.0  # Einstein relation in 3D: MSD = 6 D t
+            d_cm2_per_s = d_a2_per_ps * A2_PER_PS_IN_CM2_PER_S
         results.append(
             MeanSquaredDisplacement(
                 element=element,
                 time_fs=times.tolist(),
                 msd=msd.tolist(),
                 diffusion_coefficient_A2_per_ps=d_a2_per_ps,
-                diffusion_coefficient_cm2_per_s=d_a2_per_ps * A2_PER_PS_IN_CM2_PER_S,
+                diffusion_coefficient_cm2_per_s=d_cm2_per_s,
                 fit_window_fs=window_fs,
             )
         )

@@ -21,6 +21,12 @@ class LoadedCalculator:
     record: CalculatorRecord
     backend: Backend
     calculator: Calculator
+    weights: Path | None = None
+
+    def fresh(self) -> Calculator:
+        """Another instance of the same version (NEB gives each image its own, as ASE
+        recommends: a calculator's neighbour-list history shows in the last digits)."""
+        return self.backend.make(dict(self.record.parameters), self.weights)
 
 
 _cache: dict[str, LoadedCalculator] = {}
@@ -40,6 +46,7 @@ def get_calculator(record: CalculatorRecord) -> LoadedCalculator:
                 f"weights file {weights} has sha256 {actual}, but {record.ref} was registered "
                 f"with {record.weights_sha256}; restore the registered file"
             )
-    loaded = LoadedCalculator(record, backend, backend.make(dict(record.parameters), weights))
+    calculator = backend.make(dict(record.parameters), weights)
+    loaded = LoadedCalculator(record, backend, calculator, weights)
     _cache[record.ref] = loaded
     return loaded

@@ -265,12 +265,11 @@ def run_job(engine: Engine, job_id: int, settings: Settings) -> Outcome:
     loaded = None
     try:
         loaded = get_calculator(record)
-        loaded.calculator.reset()
         task = _task_adapter.validate_python(job.task)
         atoms = (
             None if isinstance(task, NEB) else Structure.model_validate(job.structure).to_atoms()
         )
-        result = run_task(atoms, loaded.calculator, task, report, artifacts)
+        result = run_task(atoms, loaded, task, report, artifacts)
     except Superseded:
         log.warning("job %s attempt %s lost its lease; discarding its work", job_id, attempt)
         lease.stop()

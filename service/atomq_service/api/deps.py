@@ -20,7 +20,10 @@ _bearer = HTTPBearer(auto_error=False, description="A token printed by `atomq us
 
 
 def get_session(request: Request) -> Iterator[Session]:
-    """One session per request; routes that write commit explicitly, anything else rolls back."""
+    """One session per request; routes that write commit explicitly, anything else rolls
+    back. It closes when the route function returns, before the response is sent: on
+    SQLite an open transaction holds the write lock, and a streamed response (events, an
+    artifact download) would otherwise hold it for as long as the stream lasts."""
     with Session(request.app.state.engine, expire_on_commit=False) as session:
         yield session
 
@@ -35,7 +38,7 @@ def get_dispatcher(request: Request) -> Dispatcher:
     return dispatcher
 
 
-SessionDep = Annotated[Session, Depends(get_session)]
+SessionDep = Annotated[Session, Depends(get_session, scope="function")]
 SettingsDep = Annotated[Settings, Depends(get_settings)]
 DispatcherDep = Annotated[Dispatcher, Depends(get_dispatcher)]
 

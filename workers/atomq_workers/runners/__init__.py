@@ -5,11 +5,11 @@ from __future__ import annotations
 from typing import Protocol
 
 from ase import Atoms
-from ase.calculators.calculator import Calculator
 
 from atomq.results import ResultModel
 from atomq.tasks import MD, NEB, Relax, SinglePoint, Task
 from atomq_workers.artifacts import ArtifactWriter
+from atomq_workers.calculators import LoadedCalculator
 
 
 class Reporter(Protocol):
@@ -28,7 +28,7 @@ class Reporter(Protocol):
 
 def run_task(
     atoms: Atoms | None,
-    calculator: Calculator,
+    loaded: LoadedCalculator,
     task: Task,
     report: Reporter,
     artifacts: ArtifactWriter,
@@ -37,7 +37,9 @@ def run_task(
     if isinstance(task, NEB):
         from atomq_workers.runners.neb import run_neb
 
-        return run_neb(calculator, task, report, artifacts)
+        return run_neb(loaded.fresh, task, report, artifacts)
+    calculator = loaded.calculator
+    calculator.reset()
     assert atoms is not None
     atoms.calc = calculator
     # Imported here so that a worker only pays for the runners it uses.

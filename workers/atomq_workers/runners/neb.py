@@ -1,7 +1,9 @@
-"""neb: ASE's nudged elastic band, wrapped. One calculator serves every image in turn
-(ASE's allow_shared_calculator), so a worker holds one copy of its model."""
+"""neb: ASE's nudged elastic band, wrapped, with one calculator instance per image as
+ASE recommends."""
 
 from __future__ import annotations
+
+from collections.abc import Callable
 
 import ase.io
 import numpy as np
@@ -19,21 +21,18 @@ from atomq_workers.runners.common import OPTIMIZERS
 
 
 def run_neb(
-    calculator: Calculator, task: NEBTask, report: Reporter, artifacts: ArtifactWriter
+    make_calculator: Callable[[], Calculator],
+    task: NEBTask,
+    report: Reporter,
+    artifacts: ArtifactWriter,
 ) -> NEBResult:
     # The service stores resolved endpoints, so both are inline structures here.
     assert isinstance(task.initial, Structure) and isinstance(task.final, Structure)
     initial, final = task.initial.to_atoms(), task.final.to_atoms()
     images = [initial] + [initial.copy() for _ in range(task.images)] + [final]
     for image in images:
-        image.calc = calculator
-    band = NEB(
-        images,
-        k=task.spring_constant,
-        climb=task.climb,
-        method=task.method,
-        allow_shared_calculator=True,
-    )
+        image.calc = make_calculator()
+    band = NEB(images, k=task.spring_constant, climb=task.climb, method=task.method)
     band.interpolate(method=task.interpolation)
     optimizer = OPTIMIZERS[task.optimizer](band, logfile=None)  # type: ignore[arg-type]
 
@@ -48,7 +47,7 @@ def run_neb(
 
     optimizer.attach(observe, interval=1)
     converged = bool(optimizer.run(fmax=task.fmax, steps=task.max_steps))
-    frozen = [freeze(image, calculator) for image in images]
+    frozen = [freeze(image) for image in images]
     write_images(artifacts, frozen)
     energies = [float(image.get_potential_energy()) for image in frozen]
     path = NEBTools(frozen).get_fit().path
@@ -70,9 +69,8 @@ def run_neb(
     )
 
 
-def freeze(image: Atoms, calculator: Calculator) -> Atoms:
-    """A copy holding its own energy and forces, so the shared calculator can move on."""
-    image.calc = calculator
+def freeze(image: Atoms) -> Atoms:
+    """A copy holding the image's energy and forces, detached from its calculator."""
     energy = image.get_potential_energy()
     forces = image.get_forces()
     frozen: Atoms = image.copy()
