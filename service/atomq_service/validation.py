@@ -63,6 +63,13 @@ def check_md(structure: Structure, task: MD) -> None:
             "an npt run changes the cell, so the structure must be periodic in all three "
             "directions; set pbc=True or use nve/nvt",
         )
+    if task.initial_velocities == "maxwell_boltzmann" and structure.natoms < 2:
+        raise ApiError(
+            422,
+            "too_few_atoms",
+            "Maxwell-Boltzmann velocities need at least two atoms: the centre-of-mass "
+            "momentum is removed, which leaves a single atom at rest",
+        )
     if task.initial_velocities == "from_structure" and structure.momenta is None:
         raise ApiError(
             422,

@@ -175,6 +175,11 @@ _pinned = copper()
 _pinned.set_constraint(FixAtoms(indices=[0]))
 
 BAD_INPUTS: dict[str, BadInput] = {
+    # A single atom at rest after its centre-of-mass momentum is removed: ASE's Stationary
+    # then rescales 0 K to the target temperature and produces NaN (found in a benchmark).
+    "Maxwell-Boltzmann velocities for one atom": BadInput(
+        md_body(bulk("Cu")), ["need at least two atoms"], code="too_few_atoms"
+    ),
     "zero timestep": BadInput(
         md_body(timestep_fs=0), ["task.md.timestep_fs: Input should be greater than 0"]
     ),

@@ -12,6 +12,7 @@ written once.
 from __future__ import annotations
 
 import logging
+import math
 import os
 import socket
 import threading
@@ -211,6 +212,14 @@ class ProgressWriter:
         }
         if self.lease.lost:
             raise Superseded()
+        for name, value in (("energy", energy), ("fmax", fmax), ("temperature", temperature_K)):
+            if value is not None and not math.isfinite(value):
+                raise Stop(
+                    step,
+                    JobState.failed,
+                    f"non_finite: the {name} became {value} at step {step}; check the "
+                    "structure, the time step and the calculator's range",
+                )
         if self.lease.cancel_requested:
             raise Stop(step, JobState.cancelled, f"cancelled at step {step}")
         elapsed = time.monotonic() - self.started
