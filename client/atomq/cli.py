@@ -13,9 +13,9 @@ import sys
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from atomq.client import Client
+from atomq.client import Client, Job
 from atomq.errors import AtomqError
-from atomq.tasks import CellRelax, Relax, SinglePoint
+from atomq.tasks import MD, NEB, CellRelax, JobReference, Relax, SinglePoint, Task
 
 SERVER_EXTRA_HINT = "this command needs the server parts: pip install 'atomq[server]'"
 
@@ -93,30 +93,77 @@ def _client(args: argparse.Namespace) -> Client:
     return Client(args.url, args.token)
 
 
-def cmd_submit(args: argparse.Namespace) -> int:
-    import ase.io
-
-    task: SinglePoint | Relax
+def task_from_options(args: argparse.Namespace) -> Task:
+    """The task the submit options describe; pydantic names any option that is wrong."""
     if args.task == "single_point":
-        task = SinglePoint()
-    else:
-        task = Relax(
+        return SinglePoint()
+    if args.task == "relax":
+        return Relax(
             optimizer=args.optimizer,
             fmax=args.fmax,
             max_steps=args.max_steps,
             cell=CellRelax(scalar_pressure=args.pressure) if args.relax_cell else None,
         )
+    return MD(
+        ensemble=args.ensemble,
+        thermostat=args.thermostat,
+        temperature_K=args.temperature,
+        timestep_fs=args.timestep,
+        steps=args.steps,
+        pressure_GPa=args.pressure_gpa,
+        seed=args.seed,
+        frame_interval=args.frame_interval,
+        thermo_interval=args.frame_interval,
+    )
+
+
+def cmd_submit(args: argparse.Namespace) -> int:
+    import ase.io
+
+    try:
+        task = task_from_options(args)
+    except ValueError as exc:
+        raise SystemExit(f"atomq submit: {exc}") from exc
     images = ase.io.read(args.file, index=":")
     with _client(args) as client:
         for atoms in images:
             job = client.submit(atoms, task, calculator=args.calculator, tags=args.tag)
             print(job.id)
             if args.wait:
-                info = job.wait(progress=True)
-                print(
-                    f"job {job.id} {info.state.value}" + (f": {info.error}" if info.error else "")
-                )
+                _report_when_done(job)
     return 0
+
+
+def cmd_submit_neb(args: argparse.Namespace) -> int:
+    import ase.io
+
+    def endpoint(text: str) -> Any:
+        # A number is a finished job whose final structure is used; anything else a file.
+        return JobReference(job=int(text)) if text.isdigit() else ase.io.read(text)
+
+    try:
+        task = NEB(
+            initial=endpoint(args.initial),
+            final=endpoint(args.final),
+            images=args.images,
+            climb=args.climb,
+            interpolation=args.interpolation,
+            fmax=args.fmax,
+            max_steps=args.max_steps,
+        )
+    except ValueError as exc:
+        raise SystemExit(f"atomq submit-neb: {exc}") from exc
+    with _client(args) as client:
+        job = client.submit(None, task, calculator=args.calculator, tags=args.tag)
+        print(job.id)
+        if args.wait:
+            _report_when_done(job)
+    return 0
+
+
+def _report_when_done(job: Job) -> None:
+    info = job.wait(progress=True)
+    print(f"job {job.id} {info.state.value}" + (f": {info.error}" if info.error else ""))
 
 
 def cmd_jobs(args: argparse.Namespace) -> int:
@@ -164,8 +211,12 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     import ase.io
 
     with _client(args) as client:
-        atoms = client.job(args.id).atoms(timeout=args.timeout)
-    ase.io.write(args.output, atoms)
+        job = client.job(args.id)
+        if args.artifact:
+            job.wait(args.timeout)
+            job.download(args.artifact, args.output)
+        else:
+            ase.io.write(args.output, job.atoms(timeout=args.timeout))
     print(f"wrote {args.output}")
     return 0
 
@@ -230,15 +281,35 @@ def build_parser() -> argparse.ArgumentParser:
 
     submit = client_command("submit", cmd_submit, "submit every structure in a file")
     submit.add_argument("file", help="any format ase.io.read understands")
-    submit.add_argument("--task", choices=["single_point", "relax"], default="single_point")
+    submit.add_argument("--task", choices=["single_point", "relax", "md"], default="single_point")
     submit.add_argument("--calculator", required=True, help="'name' or 'name@version'")
     submit.add_argument("--optimizer", choices=["BFGS", "LBFGS", "FIRE"], default="BFGS")
     submit.add_argument("--fmax", type=float, default=0.05, help="eV/Angstrom")
     submit.add_argument("--max-steps", type=int, default=500)
     submit.add_argument("--relax-cell", action="store_true", help="relax the cell as well")
     submit.add_argument("--pressure", type=float, default=0.0, help="eV/Angstrom^3")
+    submit.add_argument("--ensemble", choices=["nve", "nvt", "npt"], default="nvt")
+    submit.add_argument("--thermostat", choices=["langevin", "bussi", "nose_hoover_chain"])
+    submit.add_argument("--temperature", type=float, help="K")
+    submit.add_argument("--timestep", type=float, default=2.0, help="fs")
+    submit.add_argument("--steps", type=int, default=1000)
+    submit.add_argument("--pressure-gpa", type=float, default=0.0, help="npt pressure, GPa")
+    submit.add_argument("--seed", type=int, help="drawn by the service if absent")
+    submit.add_argument("--frame-interval", type=int, default=10, help="steps between frames")
     submit.add_argument("--tag", action="append", default=[])
     submit.add_argument("--wait", action="store_true", help="wait, showing progress")
+
+    neb = client_command("submit-neb", cmd_submit_neb, "a nudged elastic band between two ends")
+    neb.add_argument("initial", help="a structure file, or the id of a finished job")
+    neb.add_argument("final", help="a structure file, or the id of a finished job")
+    neb.add_argument("--calculator", required=True)
+    neb.add_argument("--images", type=int, default=5, help="intermediate images")
+    neb.add_argument("--climb", action="store_true", help="climbing image")
+    neb.add_argument("--interpolation", choices=["linear", "idpp"], default="idpp")
+    neb.add_argument("--fmax", type=float, default=0.05, help="eV/Angstrom")
+    neb.add_argument("--max-steps", type=int, default=500)
+    neb.add_argument("--tag", action="append", default=[])
+    neb.add_argument("--wait", action="store_true", help="wait, showing progress")
 
     jobs = client_command("jobs", cmd_jobs, "list jobs, newest first")
     jobs.add_argument("--state")
@@ -255,6 +326,9 @@ def build_parser() -> argparse.ArgumentParser:
     fetch.add_argument("id", type=int)
     fetch.add_argument("-o", "--output", required=True, help="e.g. out.extxyz")
     fetch.add_argument("--timeout", type=float, default=None, help="seconds to wait")
+    fetch.add_argument(
+        "--artifact", help="download this file instead (e.g. trajectory.extxyz, thermo.csv)"
+    )
 
     cancel = client_command("cancel", cmd_cancel, "cancel a job")
     cancel.add_argument("id", type=int)

@@ -83,3 +83,37 @@ def test_users_add_prints_a_working_token(redis_stack: Stack) -> None:
     assert answer.status_code == 200
     wrong = httpx.get(f"{redis_stack.url}/v1/jobs", headers={"Authorization": "Bearer atq_x"})
     assert wrong.status_code == 401
+
+
+def test_md_and_neb_from_the_command_line(redis_stack: Stack, tmp_path: Path) -> None:
+    cell = tmp_path / "cu.extxyz"
+    ase.io.write(cell, bulk("Cu", "fcc", a=3.61, cubic=True).repeat(2))
+    md = atomq(
+        redis_stack, "submit", str(cell), "--task", "md", "--ensemble", "nvt",
+        "--thermostat", "bussi", "--temperature", "300", "--steps", "50",
+        "--frame-interval", "10", "--calculator", "emt", "--wait",
+    )  # fmt: skip
+    assert md.returncode == 0, md.stderr
+    job_id = md.stdout.split()[0]
+    assert "succeeded" in md.stdout and "T=" in md.stderr  # temperature in the progress bar
+    out = tmp_path / "trajectory.extxyz"
+    fetched = atomq(redis_stack, "fetch", job_id, "--artifact", "trajectory.extxyz", "-o", str(out))
+    assert fetched.returncode == 0, fetched.stderr
+    assert len(ase.io.read(out, index=":")) == 6  # steps 0, 10, ..., 50
+
+    # An NEB between a cell and a copy with one atom nudged, both ends given as files.
+    start = bulk("Cu", "fcc", a=3.61, cubic=True).repeat(2)
+    end = start.copy()
+    end.positions[0] += (0.1, 0.0, 0.0)
+    ase.io.write(tmp_path / "a.extxyz", start)
+    ase.io.write(tmp_path / "b.extxyz", end)
+    neb = atomq(
+        redis_stack, "submit-neb", str(tmp_path / "a.extxyz"), str(tmp_path / "b.extxyz"),
+        "--images", "2", "--interpolation", "linear", "--calculator", "emt", "--wait",
+    )  # fmt: skip
+    assert neb.returncode == 0, neb.stderr
+    assert "succeeded" in neb.stdout
+
+    wrong = atomq(redis_stack, "submit", str(cell), "--task", "md", "--calculator", "emt")
+    assert wrong.returncode != 0
+    assert "nvt needs a thermostat" in wrong.stderr
