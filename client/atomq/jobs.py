@@ -82,6 +82,9 @@ class JobPublic(BaseModel):
     finished_at: datetime | None
     progress: Progress | None
     cancel_requested: bool
+    converged: bool | None = Field(
+        default=None, description="Relax and NEB: False means max_steps came first."
+    )
     error: str | None
 
 

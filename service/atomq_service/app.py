@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
@@ -9,10 +10,13 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 
+from atomq_service.api.admin import router as admin_router
+from atomq_service.api.limits import BodySizeLimit, RateLimit
 from atomq_service.api.routes import router
 from atomq_service.db import create_schema, make_engine
 from atomq_service.errors import ApiError
 from atomq_service.messaging import Dispatcher
+from atomq_service.reconciler import run_forever
 from atomq_service.registry import seed_defaults
 from atomq_service.settings import Settings, get_settings
 
@@ -27,7 +31,14 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         create_schema(engine)
         seed_defaults(engine)
+        reconciler = None
+        if settings.reconcile_interval_s > 0 and settings.broker_url:
+            reconciler = asyncio.create_task(
+                run_forever(engine, app.state.dispatcher, settings), name="reconciler"
+            )
         yield
+        if reconciler is not None:
+            reconciler.cancel()
         app.state.dispatcher.close()
         engine.dispose()
 
@@ -45,6 +56,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.engine = engine
     app.state.dispatcher = Dispatcher(settings.broker_url or "memory://")
     app.include_router(router)
+    app.include_router(admin_router)
+    app.add_middleware(RateLimit, per_minute=settings.requests_per_minute)
+    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
 
     @app.exception_handler(ApiError)
     async def _api_error(_request: Request, exc: ApiError) -> JSONResponse:

@@ -21,8 +21,36 @@ from atomq_service.settings import Settings
 from atomq_service.validation import check_job
 
 
-def create_job(session: Session, owner: User, request: JobCreate, settings: Settings) -> Job:
+def find_by_idempotency_key(session: Session, owner: User, key: str) -> Job | None:
+    return session.exec(
+        select(Job).where(Job.owner_id == owner.id, Job.idempotency_key == key)
+    ).first()
+
+
+def create_job(
+    session: Session,
+    owner: User,
+    request: JobCreate,
+    settings: Settings,
+    idempotency_key: str | None = None,
+) -> Job:
     """Validate and record a job (state queued). Raises ApiError before writing anything."""
+    active = session.exec(
+        select(func.count())
+        .select_from(Job)
+        .where(
+            Job.owner_id == owner.id,
+            col(Job.state).in_([JobState.queued.value, JobState.running.value]),
+        )
+    ).one()
+    if active >= settings.max_queued_per_user:
+        raise ApiError(
+            429,
+            "too_many_queued",
+            f"you have {active} jobs queued or running; this service allows "
+            f"{settings.max_queued_per_user} per user (ATOMQ_MAX_QUEUED_PER_USER); "
+            "submit more when some have finished",
+        )
     calculator = registry.resolve(session, request.calculator)
     task = request.task
     parents: list[int] = []
@@ -69,6 +97,7 @@ def create_job(session: Session, owner: User, request: JobCreate, settings: Sett
         seed=seed,
         parents=parents,
         time_limit_s=time_limit_s,
+        idempotency_key=idempotency_key,
     )
     session.add(job)
     session.flush()

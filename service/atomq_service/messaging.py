@@ -44,12 +44,32 @@ def celery_config(broker_url: str) -> dict[str, Any]:
     }
 
 
+BROKER_MARKER = "atomq:broker-marker"
+
+
 class Dispatcher:
     """Sends wake-up calls for committed jobs. Imports no task code."""
 
     def __init__(self, broker_url: str) -> None:
+        self.broker_url = broker_url
         self.celery = Celery("atomq-service")
         self.celery.conf.update(celery_config(broker_url))
+
+    def broker_was_emptied(self) -> bool:
+        """True once after the broker lost its contents (a Redis restarted with nothing on
+        disk, or the first look at a new broker): every queued job must then be re-sent.
+        Brokers other than Redis are never reported as emptied."""
+        if not self.broker_url.startswith(("redis://", "rediss://", "redis+socket://")):
+            return False
+        import redis
+
+        url = self.broker_url.replace("redis+socket://", "unix://")
+        client = redis.Redis.from_url(url, socket_timeout=2)
+        try:
+            # SET NX writes the marker only if it is missing, i.e. the broker is new.
+            return bool(client.set(BROKER_MARKER, "1", nx=True))
+        finally:
+            client.close()
 
     def send(self, job_id: int, calculator_ref: str) -> bool:
         """Publish; on failure the job stays queued in the database for re-dispatch."""

@@ -71,6 +71,9 @@ class Calculator(SQLModel, table=True):
 
 
 class Job(SQLModel, table=True):
+    # A client's retry of the same submission (same owner, same key) finds this row.
+    __table_args__ = (UniqueConstraint("owner_id", "idempotency_key"),)
+
     id: int | None = Field(default=None, primary_key=True)
     owner_id: int = Field(foreign_key="user.id", index=True)
     state: str = Field(default="queued", index=True)
@@ -90,12 +93,31 @@ class Job(SQLModel, table=True):
     # worker died and another delivery may take the job over.
     lease_expires_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
     cancel_requested: bool = False
+    idempotency_key: str | None = None
+    # Set once the broker accepted the job's message; the reconciler re-sends the rest.
+    dispatched_at: datetime | None = Field(default=None, sa_type=UTCDateTime, index=True)
+    converged: bool | None = None  # relax and NEB: False is shown prominently everywhere
     progress: dict[str, Any] | None = Field(default=None, sa_column=Column(JSON))
     error: str | None = None
     worker: str | None = None  # host:pid of the process that ran it last
     created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime, index=True)
     started_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
     finished_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
+
+
+class JobAttempt(SQLModel, table=True):
+    """One attempt's lease history: enough to prove no two attempts ever overlapped."""
+
+    __table_args__ = (UniqueConstraint("job_id", "attempt"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    job_id: int = Field(foreign_key="job.id", index=True)
+    attempt: int
+    worker: str
+    started_at: datetime = Field(sa_type=UTCDateTime)
+    lease_expires_at: datetime = Field(sa_type=UTCDateTime)  # the last lease it held
+    ended_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
+    outcome: str | None = None  # the state it ended the job in, or "superseded"
 
 
 class JobTag(SQLModel, table=True):

@@ -45,6 +45,21 @@ class Settings(BaseSettings):
         "whose lease expired is taken over by the next delivery.",
     )
 
+    reconcile_interval_s: float = Field(
+        default=5.0,
+        description="How often the API re-sends lost messages (0 turns the reconciler off).",
+    )
+    dispatch_grace_s: float = Field(
+        default=10.0, description="A queued job with no accepted message after this is re-sent."
+    )
+    max_body_bytes: int = Field(default=64 * 1024 * 1024, description="Largest request body.")
+    max_queued_per_user: int = Field(
+        default=20_000, description="Queued plus running jobs one user may have at once."
+    )
+    requests_per_minute: int = Field(
+        default=6000, description="Per token and API process; 0 turns the limit off."
+    )
+
     @property
     def resolved_database_url(self) -> str:
         if self.database_url:

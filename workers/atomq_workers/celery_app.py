@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 
-from celery import Celery, Task
+from celery import Celery
 from celery.signals import worker_process_init
 from sqlalchemy import Engine
 
@@ -29,13 +29,8 @@ def _fresh_engine_per_child(**_kwargs: object) -> None:
     engine.cache_clear()
 
 
-@app.task(
-    bind=True, name=RUN_JOB_TASK, acks_late=True, reject_on_worker_lost=True, max_retries=None
-)
-def run_job(self: Task, job_id: int) -> str:
-    outcome = execute.run_job(engine(), int(job_id), settings)
-    if outcome.retry_in_s is not None:
-        # Another attempt holds a live lease (a redelivery after a worker crash arrives
-        # before the dead attempt's lease runs out): come back when it may have expired.
-        raise self.retry(countdown=outcome.retry_in_s + 0.5)
-    return outcome.state
+@app.task(name=RUN_JOB_TASK, acks_late=True, reject_on_worker_lost=True)
+def run_job(job_id: int) -> str:
+    # A delivery for a job whose lease is alive elsewhere is dropped; if that attempt's
+    # worker is dead, the lease expires and the service's reconciler re-sends the job.
+    return execute.run_job(engine(), int(job_id), settings).state

@@ -3,10 +3,10 @@
 The database decides who runs a job, not the broker. A delivery claims the job with a
 conditional update (queued, or running with an expired lease -> running, attempt + 1)
 and then holds a lease that a heartbeat thread renews. A delivery for a job whose lease
-is alive elsewhere is told to come back when it could have expired. Progress, artifacts,
-the result and the final state are written only while this attempt is still the job's
-current one, so a superseded attempt never overwrites the winner, and a result is
-written once.
+is alive elsewhere is dropped; the service's reconciler re-sends a job whose lease
+expired. Progress, artifacts, the result and the final state are written only while
+this attempt is still the job's current one, so a superseded attempt never overwrites
+the winner, and a result is written once.
 """
 
 from __future__ import annotations
@@ -30,7 +30,15 @@ from atomq.results import ArtifactRecord, Provenance, ResultModel
 from atomq.structure import Structure
 from atomq.tasks import NEB, TaskSpec
 from atomq_service.db import transaction
-from atomq_service.models import Artifact, Calculator, Job, JobResult, User, utcnow
+from atomq_service.models import (
+    Artifact,
+    Calculator,
+    Job,
+    JobAttempt,
+    JobResult,
+    User,
+    utcnow,
+)
 from atomq_service.settings import Settings
 from atomq_workers.artifacts import ArtifactWriter, WrittenArtifact
 from atomq_workers.calculators import get_calculator
@@ -59,7 +67,7 @@ class Superseded(Exception):
 @dataclass(frozen=True)
 class Outcome:
     state: str
-    retry_in_s: float | None = None  # set when the job is running elsewhere
+    lease_left_s: float | None = None  # set when the job is running elsewhere
 
 
 def worker_name() -> str:
@@ -117,8 +125,27 @@ def claim(engine: Engine, job_id: int, settings: Settings) -> tuple[int | None, 
         )
         if not changed.rowcount:  # type: ignore[attr-defined]
             return None, Outcome("taken")
+        if seen_attempts:  # the previous attempt's worker stopped renewing: it was lost
+            session.execute(
+                update(JobAttempt)
+                .where(
+                    col(JobAttempt.job_id) == job_id,
+                    col(JobAttempt.attempt) == seen_attempts,
+                    col(JobAttempt.outcome).is_(None),
+                )
+                .values(outcome="lost")
+            )
         if values["state"] != JobState.running.value:
             return None, Outcome(values["state"])
+        session.add(
+            JobAttempt(
+                job_id=job_id,
+                attempt=seen_attempts + 1,
+                worker=values["worker"],
+                started_at=now,
+                lease_expires_at=values["lease_expires_at"],
+            )
+        )
         return seen_attempts + 1, None
 
 
@@ -153,15 +180,23 @@ class Lease(threading.Thread):
                 log.exception("could not renew the lease of job %s", self.job_id)
 
     def renew(self) -> None:
+        expires = utcnow() + timedelta(seconds=self.lease_s)
         with transaction(self.engine) as session:
             renewed = session.execute(
                 update(Job)
                 .where(*_mine(self.job_id, self.attempt))
-                .values(lease_expires_at=utcnow() + timedelta(seconds=self.lease_s))
+                .values(lease_expires_at=expires)
             )
             if not renewed.rowcount:  # type: ignore[attr-defined]
                 self.lost = True
                 return
+            session.execute(
+                update(JobAttempt)
+                .where(
+                    col(JobAttempt.job_id) == self.job_id, col(JobAttempt.attempt) == self.attempt
+                )
+                .values(lease_expires_at=expires)
+            )
             job = session.get(Job, self.job_id)
             self.cancel_requested = bool(job and job.cancel_requested)
 
@@ -248,6 +283,19 @@ class ProgressWriter:
         return {**self.latest, "updated_at": utcnow().isoformat()}
 
 
+def _attempt_row(job_id: int, attempt: int) -> tuple[Any, ...]:
+    return (col(JobAttempt.job_id) == job_id, col(JobAttempt.attempt) == attempt)
+
+
+def _end_attempt(engine: Engine, job_id: int, attempt: int, outcome: str) -> None:
+    with transaction(engine) as session:
+        session.execute(
+            update(JobAttempt)
+            .where(*_attempt_row(job_id, attempt))
+            .values(ended_at=utcnow(), outcome=outcome)
+        )
+
+
 # -- running --------------------------------------------------------------------
 def run_job(engine: Engine, job_id: int, settings: Settings) -> Outcome:
     """Run one delivery of a job. Never raises for a job's own error."""
@@ -283,6 +331,7 @@ def run_job(engine: Engine, job_id: int, settings: Settings) -> Outcome:
         log.warning("job %s attempt %s lost its lease; discarding its work", job_id, attempt)
         lease.stop()
         artifacts.close()
+        _end_attempt(engine, job_id, attempt, "superseded")
         return Outcome("superseded")
     except Stop as stop:
         state, reason = stop.state, stop.reason
@@ -336,12 +385,19 @@ def finish(
                 error=reason,
                 progress=report.snapshot(),
                 lease_expires_at=None,
+                converged=getattr(result, "converged", None),
             )
         )
         if not owned.rowcount:  # type: ignore[attr-defined]
             log.warning("job %s attempt %s was superseded; not recording it", job_id, attempt)
             session.rollback()
+            _end_attempt(engine, job_id, attempt, "superseded")
             return Outcome("superseded")
+        session.execute(
+            update(JobAttempt)
+            .where(*_attempt_row(job_id, attempt))
+            .values(ended_at=finished_at, outcome=state.value)
+        )
         records = []
         for item in written:
             artifact = Artifact(

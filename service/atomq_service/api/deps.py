@@ -4,10 +4,11 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from datetime import UTC, datetime
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
+from pydantic import BaseModel
 from sqlmodel import Session, select
 
 from atomq_service.errors import ApiError
@@ -70,3 +71,34 @@ def current_user(
 
 
 CurrentUser = Annotated[User, Depends(current_user)]
+
+
+def current_admin(user: CurrentUser) -> User:
+    if user.role != "admin":
+        raise ApiError(403, "admin_only", f"only admins may do this; {user.name} is a member")
+    return user
+
+
+CurrentAdmin = Annotated[User, Depends(current_admin)]
+
+
+class ErrorBody(BaseModel):
+    """Every refusal: what was wrong and how to fix it, and a short code."""
+
+    detail: str
+    code: str
+
+
+ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
+    status: {"model": ErrorBody, "description": description}
+    for status, description in {
+        401: "Missing, unknown, revoked or expired token",
+        403: "Not allowed for this user",
+        404: "No such job, artifact or calculator",
+        409: "The job's state does not allow this",
+        410: "A recorded artifact whose file is gone",
+        413: "Request body too large",
+        422: "Invalid input, with what was wrong",
+        429: "Too many requests or queued jobs",
+    }.items()
+}

@@ -4,17 +4,25 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, Header, Query, Request
 from fastapi.responses import FileResponse, StreamingResponse
 from sqlmodel import select
 
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
 from atomq.results import ArtifactRecord, Provenance, Result
 from atomq_service import events, jobs
-from atomq_service.api.deps import CurrentUser, DispatcherDep, SessionDep, SettingsDep
+from atomq_service.api.deps import (
+    ERROR_RESPONSES,
+    CurrentUser,
+    DispatcherDep,
+    SessionDep,
+    SettingsDep,
+)
+from atomq_service.errors import ApiError
 from atomq_service.models import Calculator
+from atomq_service.reconciler import mark_dispatched
 
-router = APIRouter(prefix="/v1")
+router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES)
 
 
 @router.get("/health", tags=["service"])
@@ -30,13 +38,24 @@ def create_job(
     session: SessionDep,
     settings: SettingsDep,
     dispatcher: DispatcherDep,
+    request: Request,
+    idempotency_key: Annotated[
+        str | None,
+        Header(max_length=128, description="Retries with the same key return the same job."),
+    ] = None,
 ) -> JobPublic:
-    job = jobs.create_job(session, user, body, settings)
+    if idempotency_key is not None:
+        earlier = jobs.find_by_idempotency_key(session, user, idempotency_key)
+        if earlier is not None:
+            return jobs.to_public(session, [earlier])[0]
+    job = jobs.create_job(session, user, body, settings, idempotency_key)
     public = jobs.to_public(session, [job])[0]
-    # The database is the truth: commit first, then send the wake-up call.
+    # The database is the truth: commit first, then send the wake-up call. If the send
+    # fails, or this process dies before it, the reconciler sends it later.
     session.commit()
     assert job.id is not None
-    dispatcher.send(job.id, job.calculator_ref)
+    if dispatcher.send(job.id, job.calculator_ref):
+        mark_dispatched(request.app.state.engine, [job.id])
     return public
 
 
@@ -70,8 +89,16 @@ def get_job(job_id: int, _user: CurrentUser, session: SessionDep) -> JobPublic:
 
 
 @router.post("/jobs/{job_id}/cancel", tags=["jobs"])
-def cancel_job(job_id: int, _user: CurrentUser, session: SessionDep) -> JobPublic:
-    job = jobs.cancel_job(session, jobs.get_job(session, job_id))
+def cancel_job(job_id: int, user: CurrentUser, session: SessionDep) -> JobPublic:
+    """Members cancel their own jobs; admins cancel any."""
+    job = jobs.get_job(session, job_id)
+    if job.owner_id != user.id and user.role != "admin":
+        raise ApiError(
+            403,
+            "not_your_job",
+            f"job {job_id} belongs to another member; only its owner or an admin can cancel it",
+        )
+    job = jobs.cancel_job(session, job)
     public = jobs.to_public(session, [job])[0]
     session.commit()
     return public

@@ -1,0 +1,55 @@
+"""Users, tokens and calculator registration on the wire (admin routes)."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Literal
+
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, JsonValue
+
+Role = Literal["member", "admin"]
+
+
+class UserCreate(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    name: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.@-]+$")
+    role: Role = "member"
+
+
+class UserPublic(BaseModel):
+    name: str
+    role: Role
+    created_at: datetime
+
+
+class TokenCreate(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+    expires_at: AwareDatetime | None = Field(
+        default=None, description="With a time zone; none means no expiry."
+    )
+
+
+class TokenPublic(BaseModel):
+    """A token's record; the secret itself is never shown again."""
+
+    id: int
+    user: str
+    created_at: datetime
+    expires_at: datetime | None
+    revoked: bool
+
+
+class TokenIssued(TokenPublic):
+    token: str = Field(description="Shown once; store it now.")
+
+
+class CalculatorCreate(BaseModel):
+    """A new immutable calculator version; `backend` must be an installed entry point."""
+
+    model_config = ConfigDict(extra="forbid")
+    name: str = Field(min_length=1, max_length=64, pattern=r"^[a-z0-9][a-z0-9_.-]*$")
+    version: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.-]+$")
+    backend: str = Field(min_length=1, max_length=64)
+    parameters: dict[str, JsonValue] = Field(default_factory=dict)
+    elements: list[str] = Field(min_length=1)
+    notes: str = Field(default="", max_length=4000)

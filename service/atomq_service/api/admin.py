@@ -1,0 +1,146 @@
+"""Admin routes: users, tokens, calculator versions. Members may only read themselves."""
+
+from __future__ import annotations
+
+from importlib.metadata import entry_points
+
+from fastapi import APIRouter
+from sqlmodel import Session, col, select
+
+from atomq.admin import (
+    CalculatorCreate,
+    TokenCreate,
+    TokenIssued,
+    TokenPublic,
+    UserCreate,
+    UserPublic,
+)
+from atomq.jobs import CalculatorPublic
+from atomq_service import registry
+from atomq_service.api.deps import ERROR_RESPONSES, CurrentAdmin, CurrentUser, SessionDep
+from atomq_service.errors import ApiError
+from atomq_service.models import ApiToken, Calculator, User
+from atomq_service.users import hash_token, new_token
+
+router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES, tags=["admin"])
+
+BACKEND_GROUP = "atomq.calculators"
+
+
+@router.get("/me")
+def who_am_i(user: CurrentUser) -> UserPublic:
+    return UserPublic.model_validate(user, from_attributes=True)
+
+
+@router.get("/users")
+def list_users(_admin: CurrentAdmin, session: SessionDep) -> list[UserPublic]:
+    users = session.exec(select(User).order_by(col(User.name))).all()
+    return [UserPublic.model_validate(u, from_attributes=True) for u in users]
+
+
+@router.post("/users", status_code=201)
+def create_user(body: UserCreate, _admin: CurrentAdmin, session: SessionDep) -> TokenIssued:
+    if session.exec(select(User).where(User.name == body.name)).first() is not None:
+        raise ApiError(409, "user_exists", f"user {body.name!r} exists; issue a token instead")
+    user = User(name=body.name, role=body.role)
+    session.add(user)
+    session.flush()
+    issued = _issue(session, user, TokenCreate())
+    session.commit()
+    return issued
+
+
+@router.post("/users/{name}/tokens", status_code=201)
+def issue_token(
+    name: str, body: TokenCreate, _admin: CurrentAdmin, session: SessionDep
+) -> TokenIssued:
+    issued = _issue(session, _user(session, name), body)
+    session.commit()
+    return issued
+
+
+@router.get("/users/{name}/tokens")
+def list_tokens(name: str, _admin: CurrentAdmin, session: SessionDep) -> list[TokenPublic]:
+    user = _user(session, name)
+    tokens = session.exec(select(ApiToken).where(ApiToken.user_id == user.id)).all()
+    return [_token_public(t, user) for t in tokens]
+
+
+@router.post("/tokens/{token_id}/revoke")
+def revoke_token(token_id: int, _admin: CurrentAdmin, session: SessionDep) -> TokenPublic:
+    token = session.get(ApiToken, token_id)
+    if token is None:
+        raise ApiError(404, "token_not_found", f"no token with id {token_id}")
+    token.revoked = True
+    session.add(token)
+    user = session.get(User, token.user_id)
+    assert user is not None
+    public = _token_public(token, user)
+    session.commit()
+    return public
+
+
+@router.post("/calculators", status_code=201, tags=["calculators"])
+def register_calculator(
+    body: CalculatorCreate, _admin: CurrentAdmin, session: SessionDep
+) -> CalculatorPublic:
+    # Only installed backends can be named; nothing a client sends chooses code to import.
+    installed = sorted(e.name for e in entry_points(group=BACKEND_GROUP))
+    if body.backend not in installed:
+        raise ApiError(
+            422,
+            "unknown_backend",
+            f"no backend {body.backend!r} is installed on the service; "
+            f"installed: {', '.join(installed)}",
+        )
+    calculator = registry.register(session, **body.model_dump())
+    public = _calculator_public(calculator)
+    session.commit()
+    return public
+
+
+@router.post("/calculators/{name}/{version}/retire", tags=["calculators"])
+def retire_calculator(
+    name: str, version: str, _admin: CurrentAdmin, session: SessionDep
+) -> CalculatorPublic:
+    calculator = session.exec(
+        select(Calculator).where(Calculator.name == name, Calculator.version == version)
+    ).first()
+    if calculator is None:
+        raise ApiError(404, "calculator_not_found", f"no calculator {name}@{version}")
+    calculator.retired = True
+    session.add(calculator)
+    public = _calculator_public(calculator)
+    session.commit()
+    return public
+
+
+def _user(session: Session, name: str) -> User:
+    user = session.exec(select(User).where(User.name == name)).first()
+    if user is None:
+        raise ApiError(404, "user_not_found", f"no user {name!r}")
+    return user
+
+
+def _issue(session: Session, user: User, body: TokenCreate) -> TokenIssued:
+    secret = new_token()
+    assert user.id is not None
+    token = ApiToken(user_id=user.id, token_sha256=hash_token(secret), expires_at=body.expires_at)
+    session.add(token)
+    session.flush()
+    return TokenIssued(**_token_public(token, user).model_dump(), token=secret)
+
+
+def _token_public(token: ApiToken, user: User) -> TokenPublic:
+    assert token.id is not None
+    return TokenPublic(
+        id=token.id,
+        user=user.name,
+        created_at=token.created_at,
+        expires_at=token.expires_at,
+        revoked=token.revoked,
+    )
+
+
+def _calculator_public(calculator: Calculator) -> CalculatorPublic:
+    return CalculatorPublic.model_validate({**calculator.model_dump(), "ref": calculator.ref})
