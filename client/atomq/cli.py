@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import warnings
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -45,12 +46,13 @@ def _add_server_options(parser: argparse.ArgumentParser) -> None:
 def cmd_serve(args: argparse.Namespace) -> int:
     settings = _server_settings(args)
     from atomq_service.embedded import EmbeddedStack
+    from atomq_service.settings import hide_password
 
     stack = EmbeddedStack(settings, host=args.host, port=args.port, workers=args.workers)
     stack.start()
     print(f"atomq is serving on {stack.url} with {args.workers} worker process(es)")
-    print(f"database: {stack.settings.resolved_database_url}")
-    print(f"broker:   {stack.settings.broker_url}")
+    print(f"database: {hide_password(stack.settings.resolved_database_url)}")
+    print(f"broker:   {hide_password(stack.settings.broker_url or '')}")
     print("the client config for this machine's user is written; Ctrl-C stops everything")
     stack.wait()
     return 0
@@ -163,7 +165,8 @@ def cmd_submit_neb(args: argparse.Namespace) -> int:
 
 def _report_when_done(job: Job) -> None:
     info = job.wait(progress=True)
-    print(f"job {job.id} {info.state.value}" + (f": {info.error}" if info.error else ""))
+    note = " (NOT CONVERGED: max_steps reached)" if info.converged is False else ""
+    print(f"job {job.id} {info.state.value}{note}" + (f": {info.error}" if info.error else ""))
 
 
 def cmd_jobs(args: argparse.Namespace) -> int:
@@ -178,9 +181,10 @@ def cmd_jobs(args: argparse.Namespace) -> int:
         )
     print(f"{'id':>6}  {'state':<9}  {'kind':<12}  {'calculator':<16}  {'formula':<14}  owner")
     for job in page.items:
+        flag = "  NOT CONVERGED" if job.converged is False else ""
         print(
             f"{job.id:>6}  {job.state.value:<9}  {job.kind:<12}  {job.calculator:<16}  "
-            f"{job.formula:<14}  {job.owner}"
+            f"{job.formula:<14}  {job.owner}{flag}"
         )
     print(f"({len(page.items)} of {page.total})")
     return 0
@@ -192,15 +196,15 @@ def cmd_show(args: argparse.Namespace) -> int:
         info = job.info()
         document: dict[str, Any] = {"job": info.model_dump(mode="json")}
         if info.state.value == "succeeded":
-            result = job.result().model_dump(mode="json")
+            with warnings.catch_warnings():  # said below, once, in the CLI's own words
+                warnings.simplefilter("ignore")
+                result = job.result().model_dump(mode="json")
             result.pop("structure", None)
             result.pop("forces", None)
             if result.get("kind") == "relax":
                 result["trace"] = f"{len(result['trace'])} steps"
-                if not result["converged"]:
-                    print(
-                        "WARNING: the relaxation did NOT converge within max_steps", file=sys.stderr
-                    )
+            if info.converged is False:
+                print("WARNING: NOT CONVERGED within max_steps", file=sys.stderr)
             document["result"] = result
             document["provenance"] = job.provenance().model_dump(mode="json")
     print(json.dumps(document, indent=2))

@@ -6,6 +6,8 @@ import hashlib
 import sys
 import tempfile
 import time
+import uuid
+import warnings
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any, Literal, TextIO, overload
@@ -42,9 +44,13 @@ class Client:
         token: str | None = None,
         *,
         timeout: float = 30.0,
+        retry_for_s: float = 60.0,
         transport: httpx.BaseTransport | None = None,
     ) -> None:
+        """`retry_for_s`: how long to keep retrying when the service cannot be reached (a
+        restart); submissions carry an idempotency key, so a retry never submits twice."""
         self.url, token = config.resolve(url, token)
+        self.retry_for_s = retry_for_s
         self._http = httpx.Client(
             base_url=self.url,
             headers={"Authorization": f"Bearer {token}"},
@@ -66,8 +72,20 @@ class Client:
 
     # -- requests -------------------------------------------------------------
     def request(self, method: str, path: str, **kwargs: Any) -> httpx.Response:
-        """Send one request; raise a typed error carrying the server's message."""
-        response = self._http.request(method, path, **kwargs)
+        """Send one request, retrying while the service cannot be reached; raise a typed
+        error carrying the server's message. Every atomq request is safe to repeat: reads
+        and cancels by nature, submissions through their idempotency key."""
+        deadline = time.monotonic() + self.retry_for_s
+        pause = 0.1
+        while True:
+            try:
+                response = self._http.request(method, path, **kwargs)
+                break
+            except httpx.TransportError:
+                if time.monotonic() + pause > deadline:
+                    raise
+                time.sleep(pause)
+                pause = min(pause * 2, 2.0)
         if response.status_code >= 400:
             raise _error_from(response)
         return response
@@ -100,7 +118,7 @@ class Client:
             "POST",
             "/v1/jobs",
             content=body.model_dump_json(),
-            headers={"Content-Type": "application/json"},
+            headers={"Content-Type": "application/json", "Idempotency-Key": uuid.uuid4().hex},
         )
         info = JobPublic.model_validate_json(response.content)
         return Job(self, info.id, info)
@@ -197,6 +215,10 @@ class Job:
         info = self.wait(timeout)
         if info.state is not JobState.succeeded:
             raise JobFailed(self.id, info.state.value, info.error)
+        if info.converged is False:
+            warnings.warn(
+                f"job {self.id} did NOT converge: it reached max_steps first", stacklevel=2
+            )
         response = self.client.request("GET", f"/v1/jobs/{self.id}/result")
         return _result_adapter.validate_json(response.content)
 
@@ -290,6 +312,8 @@ class Job:
 
 
 def _progress_line(info: JobPublic) -> str:
+    if info.converged is False:
+        return f"job {info.id} {info.state.value} but NOT CONVERGED (max_steps reached)"
     p = info.progress
     if p is None:
         return f"job {info.id} {info.state.value:<9}"

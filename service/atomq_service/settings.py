@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 from functools import lru_cache
 from pathlib import Path
+from urllib.parse import urlsplit, urlunsplit
 
 from pydantic import Field
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -75,6 +76,15 @@ class Settings(BaseSettings):
     @property
     def artifacts_dir(self) -> Path:
         return self.artifact_store or self.data_dir / "artifacts"
+
+
+def hide_password(url: str) -> str:
+    """A URL fit for logs and screens: any password replaced by ***."""
+    parts = urlsplit(url)
+    if parts.password is None:
+        return url
+    netloc = parts.netloc.replace(f":{parts.password}@", ":***@")
+    return urlunsplit(parts._replace(netloc=netloc))
 
 
 @lru_cache
