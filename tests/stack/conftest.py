@@ -96,6 +96,8 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
         "ATOMQ_PROGRESS_INTERVAL_S": "0.1",
         # A short lease, so a crashed attempt is taken over within seconds.
         "ATOMQ_LEASE_S": "2",
+        "ATOMQ_RECONCILE_INTERVAL_S": "0.5",
+        "ATOMQ_DISPATCH_GRACE_S": "1",
     }
     log_dir = tmp_path / "logs"
     log_dir.mkdir(exist_ok=True)

@@ -7,13 +7,14 @@ import time
 import warnings
 
 import pytest
+import redis
 from ase.build import bulk
 from celery import Celery
 from sqlmodel import Session
 
 from atomq import JobState, Relax, SinglePoint, Structure
 from atomq.hashing import input_hash
-from atomq_service.messaging import RUN_JOB_TASK, queue_name
+from atomq_service.messaging import BROKER_MARKER, RUN_JOB_TASK, queue_name
 from atomq_service.models import Job, User, utcnow
 from atomq_service.settings import hide_password
 from tests.stack.conftest import Stack
@@ -22,6 +23,15 @@ pytestmark = pytest.mark.stack
 
 
 def test_a_pickle_message_is_refused_and_runs_nothing(redis_stack: Stack) -> None:
+    # Let the reconciler make its first look at the (emptied) broker first: that look
+    # re-sends every queued job, which would send the job below in JSON.
+    broker = redis.Redis.from_url(
+        redis_stack.env["ATOMQ_BROKER_URL"].replace("redis+socket://", "unix://")
+    )
+    deadline = time.monotonic() + 20
+    while not broker.exists(BROKER_MARKER):
+        assert time.monotonic() < deadline, "the reconciler never looked at the broker"
+        time.sleep(0.1)
     structure = Structure.from_atoms(bulk("Cu"))
     with Session(redis_stack.engine) as session:
         owner = session.query(User).first()
