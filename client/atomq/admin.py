@@ -52,4 +52,4 @@ class CalculatorCreate(BaseModel):
     backend: str = Field(min_length=1, max_length=64)
     parameters: dict[str, JsonValue] = Field(default_factory=dict)
     elements: list[str] = Field(min_length=1)
-    notes: str = Field(default="", max_length=4000)
+    notes: str = Field(default="", max_length=4000, pattern=r"^[^\x00]*$")

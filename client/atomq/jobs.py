@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from datetime import datetime
 from enum import StrEnum
+from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field, JsonValue, model_validator
 
@@ -31,10 +32,15 @@ class JobCreate(BaseModel):
     structure: Structure | None = None
     task: TaskSpec
     calculator: str = Field(
+        pattern=r"^[A-Za-z0-9_.-]{1,64}(@[A-Za-z0-9_.-]{1,64})?$",
         description="A registered calculator: 'name' pins the newest version, "
-        "'name@version' an exact one."
+        "'name@version' an exact one.",
     )
-    tags: list[str] = Field(default_factory=list, max_length=32)
+    tags: list[Annotated[str, Field(pattern=r"^[A-Za-z0-9_.@+-]{1,64}$")]] = Field(
+        default_factory=list,
+        max_length=32,
+        description="Labels of letters, digits and _ . @ + - (1-64 characters).",
+    )
     time_limit_s: float | None = Field(
         default=None, gt=0, description="Wall-time limit; at most the service's own limit."
     )

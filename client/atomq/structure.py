@@ -15,10 +15,22 @@ from typing import Annotated, Any, Literal
 import numpy as np
 from ase import Atoms
 from ase.constraints import FixAtoms, FixCartesian
-from pydantic import BaseModel, ConfigDict, Field, JsonValue, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    JsonValue,
+    StrictBool,
+    StrictFloat,
+    StrictInt,
+    model_validator,
+)
 
-Vec3 = tuple[float, float, float]
-Mask3 = tuple[bool, bool, bool]
+# Strict scalars: a number field takes numbers only (not "2.5" or true), a flag booleans.
+Vec3 = tuple[StrictFloat, StrictFloat, StrictFloat]
+Mask3 = tuple[StrictBool, StrictBool, StrictBool]
+Int32 = Annotated[StrictInt, Field(ge=-(2**31), lt=2**31)]
+AtomIndex = Annotated[StrictInt, Field(ge=-(2**31), lt=2**31)]
 
 
 class FixAtomsConstraint(BaseModel):
@@ -26,7 +38,7 @@ class FixAtomsConstraint(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
     type: Literal["FixAtoms"] = "FixAtoms"
-    indices: list[int]
+    indices: list[AtomIndex]
 
 
 class FixCartesianConstraint(BaseModel):
@@ -34,7 +46,7 @@ class FixCartesianConstraint(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
     type: Literal["FixCartesian"] = "FixCartesian"
-    indices: list[int]
+    indices: list[AtomIndex]
     mask: Mask3 = (True, True, True)
 
 
@@ -50,7 +62,7 @@ class Structure(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    numbers: list[int] = Field(description="Atomic numbers, one per atom.")
+    numbers: list[Int32] = Field(description="Atomic numbers, one per atom.")
     positions: list[Vec3] = Field(description="Cartesian positions in Angstrom.")
     cell: tuple[Vec3, Vec3, Vec3] = Field(
         default=((0.0, 0.0, 0.0), (0.0, 0.0, 0.0), (0.0, 0.0, 0.0)),
@@ -58,12 +70,12 @@ class Structure(BaseModel):
     )
     pbc: Mask3 = (False, False, False)
     constraints: list[Constraint] = Field(default_factory=list)
-    initial_charges: list[float] | None = None
-    initial_magmoms: list[float] | None = None
+    initial_charges: list[StrictFloat] | None = None
+    initial_magmoms: list[StrictFloat] | None = None
     momenta: list[Vec3] | None = Field(
         default=None, description="Momenta in ASE units (amu*Angstrom/ASE time)."
     )
-    tags: list[int] | None = None
+    tags: list[Int32] | None = None
     info: dict[str, JsonValue] = Field(default_factory=dict)
 
     @model_validator(mode="after")
@@ -95,6 +107,7 @@ class Structure(BaseModel):
                 raise ValueError(f"{name} contains a value that is not finite")
         if self.momenta is not None and not all(math.isfinite(x) for p in self.momenta for x in p):
             raise ValueError("momenta contain a value that is not finite")
+        _check_info_finite(self.info, "info")
         for c in self.constraints:
             bad = [i for i in c.indices if not 0 <= i < n]
             if bad:
@@ -180,6 +193,18 @@ class Structure(BaseModel):
 
     def chemical_formula(self) -> str:
         return str(Atoms(numbers=self.numbers).get_chemical_formula(mode="hill"))
+
+
+def _check_info_finite(value: Any, where: str) -> None:
+    """info travels as JSON, which has no NaN or infinity."""
+    if isinstance(value, float) and not math.isfinite(value):
+        raise ValueError(f"{where} is {value}; only finite numbers travel")
+    if isinstance(value, list):
+        for index, item in enumerate(value):
+            _check_info_finite(item, f"{where}[{index}]")
+    elif isinstance(value, dict):
+        for key, item in value.items():
+            _check_info_finite(item, f"{where}[{key!r}]")
 
 
 def _vec3(row: Any) -> Vec3:

@@ -128,7 +128,7 @@ class JobReference(BaseModel):
     """The final structure of a finished job (for example a relaxation) used as input."""
 
     model_config = ConfigDict(extra="forbid")
-    job: int = Field(ge=1)
+    job: int = Field(ge=1, le=2**31 - 1)
 
 
 Endpoint = Structure | JobReference

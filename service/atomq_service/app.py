@@ -9,10 +9,11 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from atomq_service.api.admin import router as admin_router
 from atomq_service.api.limits import BodySizeLimit, RateLimit
-from atomq_service.api.routes import router
+from atomq_service.api.routes import public_router, router
 from atomq_service.db import create_schema, make_engine
 from atomq_service.errors import ApiError
 from atomq_service.messaging import Dispatcher
@@ -55,6 +56,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.engine = engine
     app.state.dispatcher = Dispatcher(settings.broker_url or "memory://")
+    app.include_router(public_router)
     app.include_router(router)
     app.include_router(admin_router)
     app.add_middleware(RateLimit, per_minute=settings.requests_per_minute)
@@ -63,6 +65,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @app.exception_handler(ApiError)
     async def _api_error(_request: Request, exc: ApiError) -> JSONResponse:
         return JSONResponse({"detail": exc.message, "code": exc.code}, status_code=exc.status_code)
+
+    @app.exception_handler(StarletteHTTPException)
+    async def _http_error(_request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        # The framework's own refusals (a body that is not JSON, an unknown route, a wrong
+        # method) get the same shape as ours.
+        return JSONResponse(
+            {"detail": str(exc.detail), "code": f"http_{exc.status_code}"},
+            status_code=exc.status_code,
+            headers=getattr(exc, "headers", None),
+        )
 
     @app.exception_handler(RequestValidationError)
     async def _invalid(_request: Request, exc: RequestValidationError) -> JSONResponse:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import secrets
 from collections import defaultdict
 from collections.abc import Sequence
@@ -21,10 +22,26 @@ from atomq_service.settings import Settings
 from atomq_service.validation import check_job
 
 
-def find_by_idempotency_key(session: Session, owner: User, key: str) -> Job | None:
-    return session.exec(
+def request_fingerprint(request: JobCreate) -> str:
+    return hashlib.sha256(request.model_dump_json().encode()).hexdigest()
+
+
+def find_by_idempotency_key(
+    session: Session, owner: User, key: str, request: JobCreate
+) -> Job | None:
+    """The job an earlier try of this same submission created, if any. A key reused for a
+    different submission is refused rather than silently answered with the old job."""
+    earlier = session.exec(
         select(Job).where(Job.owner_id == owner.id, Job.idempotency_key == key)
     ).first()
+    if earlier is not None and earlier.request_sha256 != request_fingerprint(request):
+        raise ApiError(
+            422,
+            "idempotency_key_reused",
+            f"Idempotency-Key {key!r} was already used for a different submission (job "
+            f"{earlier.id}); use a new key for new work",
+        )
+    return earlier
 
 
 def create_job(
@@ -77,10 +94,7 @@ def create_job(
             f"time_limit_s {request.time_limit_s:g} exceeds this service's limit of "
             f"{settings.max_wall_time_s:g} s (ATOMQ_MAX_WALL_TIME_S)",
         )
-    tags = sorted(set(request.tags))
-    for tag in tags:
-        if not tag or len(tag) > 64:
-            raise ApiError(422, "invalid_tag", f"tag {tag!r} must be 1 to 64 characters")
+    tags = sorted(set(request.tags))  # their form is checked by the contract
     assert owner.id is not None and calculator.id is not None
     seed = task.seed if isinstance(task, MD) else None
     structure = structures[0]
@@ -98,6 +112,7 @@ def create_job(
         parents=parents,
         time_limit_s=time_limit_s,
         idempotency_key=idempotency_key,
+        request_sha256=request_fingerprint(request),
     )
     session.add(job)
     session.flush()

@@ -94,6 +94,7 @@ class Job(SQLModel, table=True):
     lease_expires_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
     cancel_requested: bool = False
     idempotency_key: str | None = None
+    request_sha256: str | None = None  # what the key was first used for
     # Set once the broker accepted the job's message; the reconciler re-sends the rest.
     dispatched_at: datetime | None = Field(default=None, sa_type=UTCDateTime, index=True)
     converged: bool | None = None  # relax and NEB: False is shown prominently everywhere

@@ -166,7 +166,25 @@ def check_elements(structure: Structure, calculator: Calculator) -> None:
 MAX_LENGTH = 1e4
 
 
+# Generous bounds on per-atom values: beyond them the input is a unit or sign mistake.
+MAX_CHARGE_E = 100.0
+MAX_MAGMOM_BOHR = 100.0
+MAX_MOMENTUM = 1e4  # amu * Angstrom / ASE time; hydrogen at 1e4 is far beyond any melt
+
+
 def check_magnitudes(structure: Structure) -> None:
+    for name, values, bound in (
+        ("initial_charges", structure.initial_charges, MAX_CHARGE_E),
+        ("initial_magmoms", structure.initial_magmoms, MAX_MAGMOM_BOHR),
+        ("momenta", [abs(x) for p in structure.momenta or [] for x in p], MAX_MOMENTUM),
+    ):
+        if values and max(abs(v) for v in values) > bound:
+            raise ApiError(
+                422,
+                "value_out_of_range",
+                f"{name} has a value of magnitude {max(abs(v) for v in values):.3g}; "
+                f"values above {bound:g} are refused: check units and signs",
+            )
     largest_cell = float(np.abs(np.array(structure.cell)).max())
     largest_position = float(np.abs(np.array(structure.positions)).max())
     if max(largest_cell, largest_position) > MAX_LENGTH:

@@ -226,7 +226,11 @@ def cu_dimer(**overrides: Any) -> dict[str, Any]:
             "FixAtoms names atom index 2, but there are 2 atoms",
         ),
         (
-            {"constraints": [{"type": "FixCartesian", "indices": [-1], "mask": [1, 0, 0]}]},
+            {
+                "constraints": [
+                    {"type": "FixCartesian", "indices": [-1], "mask": [True, False, False]}
+                ]
+            },
             "FixCartesian names atom index -1",
         ),
         ({"constraints": [{"type": "FixBondLength", "indices": [0, 1]}]}, "FixBondLength"),

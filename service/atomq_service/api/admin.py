@@ -17,9 +17,17 @@ from atomq.admin import (
 )
 from atomq.jobs import CalculatorPublic
 from atomq_service import registry
-from atomq_service.api.deps import ERROR_RESPONSES, CurrentAdmin, CurrentUser, SessionDep
+from atomq_service.api.deps import (
+    ERROR_RESPONSES,
+    CurrentAdmin,
+    CurrentUser,
+    Label,
+    SessionDep,
+    TokenId,
+    UserName,
+)
 from atomq_service.errors import ApiError
-from atomq_service.models import ApiToken, Calculator, User
+from atomq_service.models import ApiToken, Calculator, User, utcnow
 from atomq_service.users import hash_token, new_token
 
 router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES, tags=["admin"])
@@ -52,7 +60,7 @@ def create_user(body: UserCreate, _admin: CurrentAdmin, session: SessionDep) -> 
 
 @router.post("/users/{name}/tokens", status_code=201)
 def issue_token(
-    name: str, body: TokenCreate, _admin: CurrentAdmin, session: SessionDep
+    name: UserName, body: TokenCreate, _admin: CurrentAdmin, session: SessionDep
 ) -> TokenIssued:
     issued = _issue(session, _user(session, name), body)
     session.commit()
@@ -60,14 +68,14 @@ def issue_token(
 
 
 @router.get("/users/{name}/tokens")
-def list_tokens(name: str, _admin: CurrentAdmin, session: SessionDep) -> list[TokenPublic]:
+def list_tokens(name: UserName, _admin: CurrentAdmin, session: SessionDep) -> list[TokenPublic]:
     user = _user(session, name)
     tokens = session.exec(select(ApiToken).where(ApiToken.user_id == user.id)).all()
     return [_token_public(t, user) for t in tokens]
 
 
 @router.post("/tokens/{token_id}/revoke")
-def revoke_token(token_id: int, _admin: CurrentAdmin, session: SessionDep) -> TokenPublic:
+def revoke_token(token_id: TokenId, _admin: CurrentAdmin, session: SessionDep) -> TokenPublic:
     token = session.get(ApiToken, token_id)
     if token is None:
         raise ApiError(404, "token_not_found", f"no token with id {token_id}")
@@ -101,7 +109,7 @@ def register_calculator(
 
 @router.post("/calculators/{name}/{version}/retire", tags=["calculators"])
 def retire_calculator(
-    name: str, version: str, _admin: CurrentAdmin, session: SessionDep
+    name: Label, version: Label, _admin: CurrentAdmin, session: SessionDep
 ) -> CalculatorPublic:
     calculator = session.exec(
         select(Calculator).where(Calculator.name == name, Calculator.version == version)
@@ -123,6 +131,8 @@ def _user(session: Session, name: str) -> User:
 
 
 def _issue(session: Session, user: User, body: TokenCreate) -> TokenIssued:
+    if body.expires_at is not None and body.expires_at <= utcnow():
+        raise ApiError(422, "expiry_in_past", "expires_at is in the past; give a future time")
     secret = new_token()
     assert user.id is not None
     token = ApiToken(user_id=user.id, token_sha256=hash_token(secret), expires_at=body.expires_at)

@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from datetime import UTC, datetime
 from typing import Annotated, Any
 
-from fastapi import Depends, Request
+from fastapi import Depends, Path, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from pydantic import BaseModel
 from sqlmodel import Session, select
@@ -82,6 +82,18 @@ def current_admin(user: CurrentUser) -> User:
 CurrentAdmin = Annotated[User, Depends(current_admin)]
 
 
+# Ids are database integers: anything past a 32-bit column (PostgreSQL's INTEGER) cannot
+# exist, so it is refused by validation rather than reaching the database.
+MAX_ID = 2**31 - 1
+JobId = Annotated[int, Path(ge=1, le=MAX_ID, description="A job's id.")]
+ArtifactId = Annotated[int, Path(ge=1, le=MAX_ID, description="An artifact's id.")]
+TokenId = Annotated[int, Path(ge=1, le=MAX_ID, description="A token's id.")]
+# Names and labels: printable text without control characters (PostgreSQL refuses NUL).
+NAME_PATTERN = r"^[A-Za-z0-9_.@+-]{1,128}$"
+UserName = Annotated[str, Path(pattern=r"^[A-Za-z0-9_.@-]{1,64}$")]
+Label = Annotated[str, Path(pattern=r"^[A-Za-z0-9_.-]{1,64}$")]
+
+
 class ErrorBody(BaseModel):
     """Every refusal: what was wrong and how to fix it, and a short code."""
 
@@ -92,6 +104,7 @@ class ErrorBody(BaseModel):
 ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
     status: {"model": ErrorBody, "description": description}
     for status, description in {
+        400: "A body that is not JSON",
         401: "Missing, unknown, revoked or expired token",
         403: "Not allowed for this user",
         404: "No such job, artifact or calculator",

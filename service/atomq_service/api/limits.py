@@ -20,7 +20,8 @@ async def _refuse(send: Send, status: int, code: str, detail: str, retry_after: 
 
 
 class BodySizeLimit:
-    """413 for a body over the limit, whether it declares its length or streams."""
+    """413 for a body over the limit, whether it declares its length or streams. A streamed
+    body is read up to the limit here and handed on whole."""
 
     def __init__(self, app: ASGIApp, max_bytes: int) -> None:
         self.app = app
@@ -34,36 +35,39 @@ class BodySizeLimit:
             f"request body over {self.max_bytes} bytes (ATOMQ_MAX_BODY_BYTES); "
             "split the work into several jobs"
         )
-        declared = dict(scope["headers"]).get(b"content-length")
-        if declared is not None and declared.isdigit() and int(declared) > self.max_bytes:
-            await _refuse(send, 413, "body_too_large", message)
-            return
-        received = 0
-        started = False
-
-        async def counting_receive() -> Message:
-            nonlocal received
-            event = await receive()
-            if event["type"] == "http.request":
-                received += len(event.get("body", b""))
-                if received > self.max_bytes:
-                    raise _TooLarge()
-            return event
-
-        async def tracking_send(event: Message) -> None:
-            nonlocal started
-            started = started or event["type"] == "http.response.start"
-            await send(event)
-
-        try:
-            await self.app(scope, counting_receive, tracking_send)
-        except _TooLarge:
-            if not started:
+        headers = dict(scope["headers"])
+        declared = headers.get(b"content-length")
+        if declared is not None:
+            if declared.isdigit() and int(declared) > self.max_bytes:
                 await _refuse(send, 413, "body_too_large", message)
+                return
+            await self.app(scope, receive, send)
+            return
+        chunks: list[bytes] = []
+        size = 0
+        while True:
+            event = await receive()
+            if event["type"] != "http.request":
+                break
+            chunk = event.get("body", b"")
+            size += len(chunk)
+            if size > self.max_bytes:
+                await _refuse(send, 413, "body_too_large", message)
+                return
+            chunks.append(chunk)
+            if not event.get("more_body", False):
+                break
+        body = b"".join(chunks)
+        replayed = False
 
+        async def replay() -> Message:
+            nonlocal replayed
+            if replayed:
+                return await receive()
+            replayed = True
+            return {"type": "http.request", "body": body, "more_body": False}
 
-class _TooLarge(Exception):
-    pass
+        await self.app(scope, replay, send)
 
 
 class RateLimit:
@@ -74,14 +78,24 @@ class RateLimit:
         self.app = app
         self.per_minute = per_minute
         self.recent: defaultdict[str, deque[float]] = defaultdict(deque)
+        self.last_sweep = time.monotonic()
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         authorization = dict(scope.get("headers", [])).get(b"authorization")
         if scope["type"] != "http" or not self.per_minute or authorization is None:
             await self.app(scope, receive, send)
             return
-        key = hashlib.sha256(authorization).hexdigest()  # never keep the secret itself
+        # The scheme is case-insensitive ("Bearer", "bearer"): count the credentials alone,
+        # hashed, so the limiter never holds a secret.
+        parts = authorization.split(None, 1)
+        credentials = parts[-1].strip() if parts else b""
+        key = hashlib.sha256(credentials).hexdigest()
         now = time.monotonic()
+        if now - self.last_sweep >= 60:  # forget tokens idle for a minute: memory stays bounded
+            self.last_sweep = now
+            idle = [k for k, times in self.recent.items() if not times or times[-1] <= now - 60]
+            for stale in idle:
+                del self.recent[stale]
         window = self.recent[key]
         while window and window[0] <= now - 60:
             window.popleft()

@@ -10,11 +10,16 @@ from sqlmodel import select
 
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
 from atomq.results import ArtifactRecord, Provenance, Result
+from atomq.tasks import TaskKind
 from atomq_service import events, jobs
 from atomq_service.api.deps import (
     ERROR_RESPONSES,
+    MAX_ID,
+    NAME_PATTERN,
+    ArtifactId,
     CurrentUser,
     DispatcherDep,
+    JobId,
     SessionDep,
     SettingsDep,
 )
@@ -23,9 +28,10 @@ from atomq_service.models import Calculator
 from atomq_service.reconciler import mark_dispatched
 
 router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES)
+public_router = APIRouter(prefix="/v1")  # no token, no refusals to document
 
 
-@router.get("/health", tags=["service"])
+@public_router.get("/health", tags=["service"])
 def health(session: SessionDep) -> dict[str, str]:
     session.exec(select(1)).one()
     return {"status": "ok", "database": "ok"}
@@ -41,11 +47,14 @@ def create_job(
     request: Request,
     idempotency_key: Annotated[
         str | None,
-        Header(max_length=128, description="Retries with the same key return the same job."),
+        Header(
+            pattern=r"^[\x21-\x7e]{1,128}$",  # visible ASCII
+            description="Retries with the same key return the same job.",
+        ),
     ] = None,
 ) -> JobPublic:
     if idempotency_key is not None:
-        earlier = jobs.find_by_idempotency_key(session, user, idempotency_key)
+        earlier = jobs.find_by_idempotency_key(session, user, idempotency_key, body)
         if earlier is not None:
             return jobs.to_public(session, [earlier])[0]
     job = jobs.create_job(session, user, body, settings, idempotency_key)
@@ -64,11 +73,13 @@ def list_jobs(
     _user: CurrentUser,
     session: SessionDep,
     state: JobState | None = None,
-    owner: str | None = None,
-    calculator: Annotated[str | None, Query(description="'name' or 'name@version'")] = None,
-    kind: str | None = None,
-    tag: str | None = None,
-    offset: Annotated[int, Query(ge=0)] = 0,
+    owner: Annotated[str | None, Query(pattern=NAME_PATTERN)] = None,
+    calculator: Annotated[
+        str | None, Query(pattern=NAME_PATTERN, description="'name' or 'name@version'")
+    ] = None,
+    kind: TaskKind | None = None,
+    tag: Annotated[str | None, Query(pattern=NAME_PATTERN)] = None,
+    offset: Annotated[int, Query(ge=0, le=MAX_ID)] = 0,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
 ) -> JobPage:
     return jobs.list_jobs(
@@ -84,12 +95,12 @@ def list_jobs(
 
 
 @router.get("/jobs/{job_id}", tags=["jobs"])
-def get_job(job_id: int, _user: CurrentUser, session: SessionDep) -> JobPublic:
+def get_job(job_id: JobId, _user: CurrentUser, session: SessionDep) -> JobPublic:
     return jobs.to_public(session, [jobs.get_job(session, job_id)])[0]
 
 
 @router.post("/jobs/{job_id}/cancel", tags=["jobs"])
-def cancel_job(job_id: int, user: CurrentUser, session: SessionDep) -> JobPublic:
+def cancel_job(job_id: JobId, user: CurrentUser, session: SessionDep) -> JobPublic:
     """Members cancel their own jobs; admins cancel any."""
     job = jobs.get_job(session, job_id)
     if job.owner_id != user.id and user.role != "admin":
@@ -105,17 +116,17 @@ def cancel_job(job_id: int, user: CurrentUser, session: SessionDep) -> JobPublic
 
 
 @router.get("/jobs/{job_id}/result", tags=["results"], response_model=Result)
-def get_result(job_id: int, _user: CurrentUser, session: SessionDep) -> Any:
+def get_result(job_id: JobId, _user: CurrentUser, session: SessionDep) -> Any:
     return jobs.get_result(session, jobs.get_job(session, job_id)).result
 
 
 @router.get("/jobs/{job_id}/provenance", tags=["results"], response_model=Provenance)
-def get_provenance(job_id: int, _user: CurrentUser, session: SessionDep) -> Any:
+def get_provenance(job_id: JobId, _user: CurrentUser, session: SessionDep) -> Any:
     return jobs.get_result(session, jobs.get_job(session, job_id)).provenance
 
 
 @router.get("/jobs/{job_id}/artifacts", tags=["results"])
-def list_artifacts(job_id: int, _user: CurrentUser, session: SessionDep) -> list[ArtifactRecord]:
+def list_artifacts(job_id: JobId, _user: CurrentUser, session: SessionDep) -> list[ArtifactRecord]:
     return [
         ArtifactRecord.model_validate(a, from_attributes=True)
         for a in jobs.list_artifacts(session, jobs.get_job(session, job_id))
@@ -126,10 +137,18 @@ def list_artifacts(job_id: int, _user: CurrentUser, session: SessionDep) -> list
     "/artifacts/{artifact_id}",
     tags=["results"],
     response_class=FileResponse,
-    responses={200: {"content": {"application/octet-stream": {}}}},
+    responses={
+        200: {
+            "content": {
+                "chemical/x-extxyz": {},
+                "text/csv": {},
+                "application/octet-stream": {},
+            }
+        }
+    },
 )
 def download_artifact(
-    artifact_id: int, _user: CurrentUser, session: SessionDep, settings: SettingsDep
+    artifact_id: ArtifactId, _user: CurrentUser, session: SessionDep, settings: SettingsDep
 ) -> FileResponse:
     artifact, path = jobs.artifact_file(session, artifact_id, settings)
     return FileResponse(path, media_type=artifact.media_type, filename=artifact.name)
@@ -141,7 +160,7 @@ def download_artifact(
     response_class=StreamingResponse,
     responses={200: {"content": {"text/event-stream": {}}}},
 )
-def follow_job(job_id: int, _user: CurrentUser, session: SessionDep, request: Request) -> Any:
+def follow_job(job_id: JobId, _user: CurrentUser, session: SessionDep, request: Request) -> Any:
     """Server-sent events: a `job` event with the job's record whenever it changes, until
     it finishes; then an `end` event."""
     jobs.get_job(session, job_id)  # 404 before the stream starts
