@@ -52,3 +52,34 @@ def test_seeded_argon_is_within_one_percent_of_the_lattice_sum() -> None:
     atoms = bulk("Ar", "fcc", a=r0 * np.sqrt(2))
     atoms.calc = load_backend("lennard_jones").make(dict(record["parameters"]), None)
     assert atoms.get_potential_energy() == pytest.approx(exact, rel=0.01)
+
+
+def test_a_worker_does_not_advertise_a_backend_whose_packages_are_missing(tmp_path) -> None:
+    from importlib.util import find_spec
+
+    from atomq_service.db import create_schema, make_engine, transaction
+    from atomq_service.registry import register, seed_defaults
+    from atomq_workers.main import runnable_calculators
+
+    engine = make_engine(f"sqlite:///{tmp_path / 'atomq.db'}")
+    create_schema(engine)
+    seed_defaults(engine)
+    with transaction(engine) as session:
+        register(
+            session,
+            name="sevennet-0",
+            version="1",
+            backend="sevennet",
+            parameters={"checkpoint": "7net-0"},
+            elements=["Cu"],
+        )
+    runnable, skipped = runnable_calculators(engine)
+    absent = [m for m in ("sevenn", "torch") if find_spec(m) is None]
+    # The entry point itself always imports (its heavy imports wait for `make`), so the
+    # worker must check the modules: without them it must not take ML jobs.
+    if absent:
+        assert "sevennet-0@1" not in runnable
+        assert skipped["sevennet-0@1"] == f"backend 'sevennet' needs {', '.join(absent)}"
+    else:
+        assert "sevennet-0@1" in runnable
+    assert "emt@1" in runnable

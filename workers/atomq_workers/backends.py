@@ -10,6 +10,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 from importlib.metadata import entry_points
+from importlib.util import find_spec
 from pathlib import Path
 from typing import Any
 
@@ -28,6 +29,16 @@ class Backend:
     name: str
     package: str  # the distribution whose version goes into provenance
     make: Callable[[dict[str, Any], Path | None], Calculator]
+    # Modules `make` imports: a worker lacking one must not advertise this backend.
+    requires: tuple[str, ...] = ()
+    # Further distributions whose versions a result's provenance records (torch, ...).
+    runtime_packages: tuple[str, ...] = ()
+
+    def missing(self, parameters: dict[str, Any]) -> list[str]:
+        """Modules this backend, with these parameters, needs but this machine lacks.
+        A "d3" parameter adds dispersion from the dftd3 package."""
+        needed = [*self.requires, *(["dftd3"] if "d3" in parameters else [])]
+        return [module for module in needed if find_spec(module) is None]
 
 
 class BackendUnavailable(RuntimeError):

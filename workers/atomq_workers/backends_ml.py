@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import collections
 import contextlib
+import functools
 import io
 import pickle
 import warnings
@@ -139,6 +140,7 @@ def add_d3(calculator: Calculator, d3: dict[str, Any]) -> D3Corrected:
 def with_d3(make: Make) -> Make:
     """Wrap a backend's `make` so that an optional `"d3"` parameter adds D3 dispersion."""
 
+    @functools.wraps(make)
     def make_with_d3(parameters: dict[str, Any], weights: Path | None) -> Calculator:
         parameters = dict(parameters)  # the record's own dict stays as registered
         d3 = parameters.pop("d3", None)
@@ -151,29 +153,37 @@ def with_d3(make: Make) -> Make:
         # only what both have (properties, reset).
         return cast(Calculator, add_d3(base, d3))
 
-    make_with_d3.__doc__ = make.__doc__
     return make_with_d3
 
 
 # -- tblite: GFN1-xTB and GFN2-xTB ----------------------------------------------------------
 XTB_METHODS = ("GFN2-xTB", "GFN1-xTB")
+# tblite options atomq passes through, each a positive number; True: a whole number.
+XTB_OPTIONS = {"accuracy": False, "electronic_temperature": False, "max_iterations": True}
 # Both GFN1-xTB and GFN2-xTB are parametrised for H to Rn, Z = 1-86 (Bannwarth, Ehlert
 # and Grimme, J. Chem. Theory Comput. 15, 1652 (2019); recalled from memory).
 XTB_ELEMENTS: list[str] = chemical_symbols[1:87]
 
 
 def _tblite(parameters: dict[str, Any], weights: Path | None) -> Calculator:
-    """GFN-xTB from tblite; unset options keep tblite's own defaults."""
+    """GFN-xTB from tblite; unset options keep tblite's own defaults.
+
+    GFN-xTB is made for molecules and non-metallic solids: on slightly rattled bulk copper
+    tblite's SCF did not converge in 250 cycles (bench/ml_backends.py), so a job ends
+    failed there rather than giving a number.
+    """
     if "d3" in parameters:
         raise ValueError(
             "tblite backend: GFN1-xTB already contains D3 and GFN2-xTB D4 dispersion; "
             "remove the 'd3' parameter"
         )
-    _check_keys(
-        "tblite",
-        parameters,
-        {"method", "accuracy", "electronic_temperature", "max_iterations"},
-    )
+    _check_keys("tblite", parameters, {"method", *XTB_OPTIONS})
+    for key, whole in XTB_OPTIONS.items():
+        value = parameters.get(key, 1)
+        kinds = int if whole else (int, float)
+        if isinstance(value, bool) or not isinstance(value, kinds) or value <= 0:
+            kind = "whole number" if whole else "number"
+            raise ValueError(f"tblite backend: {key} must be a positive {kind}, not {value!r}")
     if weights is not None:
         raise ValueError("tblite backend takes no weights file; register it without one")
     method = parameters.get("method", "GFN2-xTB")
@@ -315,6 +325,8 @@ def _chgnet(parameters: dict[str, Any], weights: Path | None) -> Calculator:
         if package is None:
             raise BackendUnavailable("chgnet is not installed: `pip install chgnet`")
         weights = package / CHGNET_SHIPPED[model]
+        if not weights.is_file():
+            raise BackendUnavailable(f"chgnet's model {model} is missing at {weights}")
     chgnet_model = _require("chgnet.model", "chgnet")
     # chgnet prints a line on every load; the worker's log needs none of them.
     with contextlib.redirect_stdout(io.StringIO()):
@@ -328,42 +340,38 @@ def _chgnet(parameters: dict[str, Any], weights: Path | None) -> Calculator:
     return chgnet
 
 
-TBLITE_BACKEND = Backend("tblite", "tblite", _tblite)
-SEVENN_BACKEND = Backend("sevennet", "sevenn", with_d3(_sevennet))
-CHGNET_BACKEND = Backend("chgnet", "chgnet", with_d3(_chgnet))
+TBLITE_BACKEND = Backend(
+    "tblite", "tblite", _tblite, requires=("tblite",), runtime_packages=("tblite",)
+)
+SEVENN_BACKEND = Backend(
+    "sevennet",
+    "sevenn",
+    with_d3(_sevennet),
+    requires=("sevenn", "torch"),
+    runtime_packages=("sevenn", "torch", "e3nn"),
+)
+CHGNET_BACKEND = Backend(
+    "chgnet",
+    "chgnet",
+    with_d3(_chgnet),
+    requires=("chgnet", "torch"),
+    runtime_packages=("chgnet", "torch", "pymatgen"),
+)
 
 BACKENDS = {backend.name: backend for backend in (TBLITE_BACKEND, SEVENN_BACKEND, CHGNET_BACKEND)}
 
-# Distributions whose versions belong in a result's provenance, per backend name.
-RUNTIME_PACKAGES = {
-    "tblite": ("tblite",),
-    "sevennet": ("sevenn", "torch", "e3nn"),
-    "chgnet": ("chgnet", "torch", "pymatgen"),
-}
-
-
-# Top-level modules each backend imports in `make`. Importing this module never fails, so
-# `load_backend` alone cannot tell a worker that lacks them; `missing_modules` can, cheaply.
-REQUIRED_MODULES = {
-    "tblite": ("tblite",),
-    "sevennet": ("sevenn", "torch"),
-    "chgnet": ("chgnet", "torch"),
-}
-
 
 def missing_modules(backend: str, parameters: dict[str, Any] | None = None) -> list[str]:
-    """Modules this backend (with D3, if asked) needs but this machine lacks; imports none."""
-    needed = list(REQUIRED_MODULES.get(backend, ()))
-    if parameters and "d3" in parameters:
-        needed.append("dftd3")
-    return [module for module in needed if find_spec(module) is None]
+    """Modules this backend (with D3, if asked) needs but this machine lacks; imports none.
+    Importing this module never fails, so `load_backend` alone cannot tell."""
+    known = BACKENDS.get(backend)
+    return known.missing(parameters or {}) if known else []
 
 
 def package_versions(backend: str, parameters: dict[str, Any]) -> dict[str, str]:
     """Versions of every package a calculator of this backend and parameters runs on."""
-    names = list(RUNTIME_PACKAGES.get(backend, ()))
-    if "d3" in parameters:
-        names.append("dftd3")
+    known = BACKENDS.get(backend)
+    names = [*(known.runtime_packages if known else ()), *(["dftd3"] if "d3" in parameters else [])]
     return {name: package_version(name) for name in names}
 
 

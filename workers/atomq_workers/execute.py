@@ -357,7 +357,7 @@ def run_job(engine: Engine, job_id: int, settings: Settings) -> Outcome:
             artifacts=[],  # filled with ids once the artifact rows exist
             started_at=started_at,
             finished_at=utcnow(),
-            **environment(loaded.backend.package if loaded else "ase"),  # type: ignore[arg-type]
+            **environment(loaded.backend if loaded else None, record.parameters),  # type: ignore[arg-type]
         )
     return finish(engine, job_id, attempt, state, reason, result, provenance, written, report)
 

@@ -33,9 +33,13 @@ def runnable_calculators(engine: Engine) -> tuple[list[str], dict[str, str]]:
     skipped: dict[str, str] = {}
     for record in records:
         try:
-            load_backend(record.backend)
+            backend = load_backend(record.backend)
         except BackendUnavailable as exc:
             skipped[record.ref] = str(exc)
+            continue
+        missing = backend.missing(record.parameters)
+        if missing:
+            skipped[record.ref] = f"backend {record.backend!r} needs {', '.join(missing)}"
             continue
         runnable.append(record.ref)
     return runnable, skipped

@@ -7,6 +7,10 @@ import platform
 import socket
 from functools import lru_cache
 from importlib.metadata import PackageNotFoundError, version
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from atomq_workers.backends import Backend
 
 
 def package_version(distribution: str) -> str:
@@ -44,14 +48,19 @@ def thread_counts() -> dict[str, int]:
     return counts
 
 
-def environment(backend_package: str) -> dict[str, object]:
+def environment(backend: Backend | None, parameters: dict[str, Any]) -> dict[str, object]:
     packages = {
         "python": platform.python_version(),
         "atomq": package_version("atomq"),
         "ase": package_version("ase"),
         "numpy": package_version("numpy"),
     }
-    packages.setdefault(backend_package, package_version(backend_package))
+    if backend is not None:
+        extra = [backend.package, *backend.runtime_packages]
+        if "d3" in parameters:  # dispersion added on top of the model
+            extra.append("dftd3")
+        for name in extra:
+            packages.setdefault(name, package_version(name))
     return {
         "packages": packages,
         "host": socket.gethostname(),
