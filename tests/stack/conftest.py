@@ -11,15 +11,18 @@ import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import httpx
 import pytest
+from ase.build import bulk
 from sqlalchemy import Engine
-from sqlmodel import Session
+from sqlmodel import Session, select
 
-from atomq import Client
+from atomq import Client, SinglePoint, Structure
+from atomq.hashing import input_hash
 from atomq_service.db import create_schema, make_engine
-from atomq_service.models import Job
+from atomq_service.models import Job, User
 from atomq_service.registry import seed_defaults
 from atomq_service.users import add_user
 from tests.conftest import free_port
@@ -60,6 +63,31 @@ class Stack:
                 os.killpg(process.pid, signal.SIGKILL)
                 process.wait()
         self.engine.dispose()
+
+    def insert_queued_job(self, **fields: Any) -> int:
+        """A queued Cu single point written straight to the database, with no message sent:
+        what a crash between commit and publish leaves behind (fields override the row)."""
+        structure = Structure.from_atoms(bulk("Cu"))
+        with Session(self.engine) as session:
+            owner = session.exec(select(User)).first()
+            assert owner is not None and owner.id is not None
+            job = Job(
+                owner_id=owner.id,
+                kind="single_point",
+                calculator_id=1,
+                calculator_ref="emt@1",
+                task=SinglePoint().model_dump(mode="json"),
+                structure=structure.model_dump(mode="json"),
+                natoms=1,
+                formula="Cu",
+                input_hash=input_hash(structure, SinglePoint(), "emt@1", None),
+                time_limit_s=60,
+                **fields,
+            )
+            session.add(job)
+            session.commit()
+            assert job.id is not None
+            return job.id
 
     def worker_of(self, job_id: int) -> str:
         """host:pid of the process running the job, as the database records it."""

@@ -12,10 +12,9 @@ from ase.build import bulk
 from celery import Celery
 from sqlmodel import Session
 
-from atomq import JobState, Relax, SinglePoint, Structure
-from atomq.hashing import input_hash
+from atomq import JobState, Relax
 from atomq_service.messaging import BROKER_MARKER, RUN_JOB_TASK, queue_name
-from atomq_service.models import Job, User, utcnow
+from atomq_service.models import Job, utcnow
 from atomq_service.settings import hide_password
 from tests.stack.conftest import Stack
 
@@ -32,28 +31,9 @@ def test_a_pickle_message_is_refused_and_runs_nothing(redis_stack: Stack) -> Non
     while not broker.exists(BROKER_MARKER):
         assert time.monotonic() < deadline, "the reconciler never looked at the broker"
         time.sleep(0.1)
-    structure = Structure.from_atoms(bulk("Cu"))
-    with Session(redis_stack.engine) as session:
-        owner = session.query(User).first()
-        assert owner is not None and owner.id is not None
-        # A queued job whose only message is the pickle one below (marked dispatched, so
-        # the reconciler leaves it alone).
-        job = Job(
-            owner_id=owner.id,
-            kind="single_point",
-            calculator_id=1,
-            calculator_ref="emt@1",
-            task=SinglePoint().model_dump(mode="json"),
-            structure=structure.model_dump(mode="json"),
-            natoms=1,
-            formula="Cu",
-            input_hash=input_hash(structure, SinglePoint(), "emt@1", None),
-            time_limit_s=60,
-            dispatched_at=utcnow(),
-        )
-        session.add(job)
-        session.commit()
-        job_id = job.id
+    # A queued job whose only message is the pickle one below (marked dispatched, so the
+    # reconciler leaves it alone).
+    job_id = redis_stack.insert_queued_job(dispatched_at=utcnow())
     attacker = Celery(broker=redis_stack.env["ATOMQ_BROKER_URL"])
     attacker.conf.update(task_serializer="pickle", accept_content=["pickle"])
     attacker.send_task(RUN_JOB_TASK, args=[job_id], queue=queue_name("emt@1"))
