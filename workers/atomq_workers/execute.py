@@ -329,7 +329,6 @@ def run_job(engine: Engine, job_id: int, settings: Settings) -> Outcome:
         result = run_task(atoms, loaded, task, report, artifacts)
     except Superseded:
         log.warning("job %s attempt %s lost its lease; discarding its work", job_id, attempt)
-        lease.stop()
         artifacts.close()
         _end_attempt(engine, job_id, attempt, "superseded")
         return Outcome("superseded")
