@@ -90,6 +90,19 @@ def cmd_users_add(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_verify(args: argparse.Namespace) -> int:
+    settings = _server_settings(args)
+    from atomq_service.db import make_engine
+    from atomq_service.verify import verify_artifacts
+
+    engine = make_engine(settings.resolved_database_url)
+    checked, problems = verify_artifacts(engine, settings.artifacts_dir)
+    for p in problems:
+        print(f"artifact {p.artifact_id} ({p.name}) of job {p.job_id}: {p.problem}")
+    print(f"checked {checked} artifacts: {len(problems)} do not match their records")
+    return 1 if problems else 0
+
+
 # -- client commands ----------------------------------------------------------
 def _client(args: argparse.Namespace) -> Client:
     return Client(args.url, args.token)
@@ -274,6 +287,12 @@ def build_parser() -> argparse.ArgumentParser:
     _add_server_options(demo)
     demo.add_argument("--port", type=int, default=8766)
     demo.set_defaults(handler=cmd_demo)
+
+    verify = commands.add_parser(
+        "verify", help="recompute every artifact's sha256 and report mismatches (server)"
+    )
+    _add_server_options(verify)
+    verify.set_defaults(handler=cmd_verify)
 
     users = commands.add_parser("users", help="manage users (on the server machine)")
     users_commands = users.add_subparsers(dest="users_command", required=True)
