@@ -152,6 +152,11 @@ class Client:
         response = self.request("GET", "/v1/jobs", params=params)
         return JobPage.model_validate_json(response.content)
 
+    def prov_json(self, tag: str) -> dict[str, Any]:
+        """Every finished job with this tag as one W3C PROV-JSON document."""
+        document: dict[str, Any] = self.request("GET", "/v1/prov-json", params={"tag": tag}).json()
+        return document
+
     def calculators(self) -> list[CalculatorPublic]:
         response = self.request("GET", "/v1/calculators")
         return [CalculatorPublic.model_validate(item) for item in response.json()]
@@ -303,6 +308,18 @@ class Job:
         with tempfile.TemporaryDirectory(prefix="atomq-") as scratch:
             path = self.download(name, Path(scratch) / name)
             yield from ase.io.iread(path, index=":", format="extxyz")
+
+    def lineage(self) -> list[Provenance]:
+        """Provenance of this result and of every result it was derived from (parents)."""
+        response = self.client.request("GET", f"/v1/jobs/{self.id}/lineage")
+        return [Provenance.model_validate(item) for item in response.json()]
+
+    def prov_json(self) -> dict[str, Any]:
+        """This job's lineage as a W3C PROV-JSON document."""
+        document: dict[str, Any] = self.client.request(
+            "GET", f"/v1/jobs/{self.id}/prov-json"
+        ).json()
+        return document
 
     def cancel(self) -> JobPublic:
         """Ask the service to stop the job; a running job stops at its next step."""

@@ -13,6 +13,7 @@ from sqlmodel import Session, col, select
 
 from atomq.hashing import input_hash
 from atomq.jobs import JobCreate, JobPage, JobPublic, JobState
+from atomq.results import Provenance
 from atomq.structure import Structure
 from atomq.tasks import MD, NEB, JobReference
 from atomq_service import registry
@@ -255,3 +256,29 @@ def artifact_file(session: Session, artifact_id: int, settings: Settings) -> tup
             "artifact store; check ATOMQ_ARTIFACT_STORE on the API machine",
         )
     return artifact, path
+
+
+def lineage(session: Session, job: Job) -> list[Provenance]:
+    """Provenance of the job's result and of every result it was derived from, parents
+    first reached breadth-first: "what produced this number"."""
+    records: list[Provenance] = []
+    seen: set[int] = set()
+    queue = [job]
+    while queue:
+        current = queue.pop(0)
+        if current.id is None or current.id in seen:
+            continue
+        seen.add(current.id)
+        records.append(Provenance.model_validate(get_result(session, current).provenance))
+        queue.extend(get_job(session, parent) for parent in current.parents)
+    return records
+
+
+def tagged_provenance(session: Session, tag: str) -> list[Provenance]:
+    rows = session.exec(
+        select(JobResult.provenance)
+        .join(JobTag, col(JobTag.job_id) == col(JobResult.job_id))
+        .where(JobTag.tag == tag)
+        .order_by(col(JobResult.job_id))
+    ).all()
+    return [Provenance.model_validate(row) for row in rows]

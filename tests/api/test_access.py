@@ -168,6 +168,9 @@ MATRIX: dict[tuple[str, str], tuple[str, ...]] = {
     ("GET", "/v1/jobs/{job_id}/result"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/jobs/{job_id}/provenance"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/jobs/{job_id}/artifacts"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/jobs/{job_id}/lineage"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/jobs/{job_id}/prov-json"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/prov-json"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/jobs/{job_id}/events"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/artifacts/{artifact_id}"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/calculators"): (*DENIED, "200", "200", "200"),
@@ -206,6 +209,8 @@ def prepare(lab: Lab, method: str, route: str) -> tuple[str, dict[str, Any] | No
         with transaction(lab.engine) as session:
             register(session, name=f"to-retire-{n}", version="1", backend="emt", elements=["Cu"])
         return f"/v1/calculators/to-retire-{n}/1/retire", None
+    if route == "/v1/prov-json":
+        return f"{route}?tag=screening", None
     if (method, route) == ("POST", "/v1/users"):
         return route, {"name": f"new-member-{n}"}
     if route == "/v1/users/{name}/tokens":

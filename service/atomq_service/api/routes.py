@@ -25,6 +25,7 @@ from atomq_service.api.deps import (
 )
 from atomq_service.errors import ApiError
 from atomq_service.models import Calculator
+from atomq_service.prov import prov_document
 from atomq_service.reconciler import mark_dispatched
 
 router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES)
@@ -123,6 +124,26 @@ def get_result(job_id: JobId, _user: CurrentUser, session: SessionDep) -> Any:
 @router.get("/jobs/{job_id}/provenance", tags=["results"], response_model=Provenance)
 def get_provenance(job_id: JobId, _user: CurrentUser, session: SessionDep) -> Any:
     return jobs.get_result(session, jobs.get_job(session, job_id)).provenance
+
+
+@router.get("/jobs/{job_id}/lineage", tags=["provenance"])
+def get_lineage(job_id: JobId, _user: CurrentUser, session: SessionDep) -> list[Provenance]:
+    """Provenance of this result and of every result it was derived from."""
+    return jobs.lineage(session, jobs.get_job(session, job_id))
+
+
+@router.get("/jobs/{job_id}/prov-json", tags=["provenance"])
+def get_prov_json(job_id: JobId, _user: CurrentUser, session: SessionDep) -> dict[str, Any]:
+    """The job's lineage as a W3C PROV-JSON document."""
+    return prov_document(jobs.lineage(session, jobs.get_job(session, job_id)))
+
+
+@router.get("/prov-json", tags=["provenance"])
+def get_tag_prov_json(
+    tag: Annotated[str, Query(pattern=NAME_PATTERN)], _user: CurrentUser, session: SessionDep
+) -> dict[str, Any]:
+    """Every finished job with this tag as one W3C PROV-JSON document."""
+    return prov_document(jobs.tagged_provenance(session, tag))
 
 
 @router.get("/jobs/{job_id}/artifacts", tags=["results"])
