@@ -3,6 +3,9 @@
 Every few seconds it re-sends the message of
 - a queued job whose message the broker never accepted (a crash between commit and
   publish, or the broker was down at submission),
+- a queued job whose message was sent long ago (ATOMQ_REDISPATCH_AFTER_S) but never
+  claimed: a worker main process killed after taking the message leaves it in Redis's
+  unacknowledged set until the visibility timeout (an hour),
 - every queued job when the broker lost its contents (Redis restarted with nothing on
   disk),
 - a running job whose lease expired (its worker died; the next delivery takes it over
@@ -39,9 +42,10 @@ def reconcile_once(engine: Engine, dispatcher: Dispatcher, settings: Settings) -
     undispatched = col(Job.dispatched_at).is_(None) & (
         col(Job.created_at) < now - timedelta(seconds=settings.dispatch_grace_s)
     )
+    stranded = col(Job.dispatched_at) < now - timedelta(seconds=settings.redispatch_after_s)
     queued = col(Job.state) == JobState.queued.value
     if not emptied:
-        queued = queued & undispatched
+        queued = queued & (undispatched | stranded)
     expired = (col(Job.state) == JobState.running.value) & (col(Job.lease_expires_at) < now)
     with transaction(engine) as session:
         rows = session.exec(select(Job.id, Job.calculator_ref).where(or_(queued, expired))).all()

@@ -53,6 +53,12 @@ class Settings(BaseSettings):
     dispatch_grace_s: float = Field(
         default=10.0, description="A queued job with no accepted message after this is re-sent."
     )
+    redispatch_after_s: float = Field(
+        default=120.0,
+        description="A job still queued this long after its message was sent gets another "
+        "(a message can be stranded in a dead worker's unacknowledged set); duplicates are "
+        "harmless.",
+    )
     max_body_bytes: int = Field(default=64 * 1024 * 1024, description="Largest request body.")
     max_queued_per_user: int = Field(
         default=20_000, description="Queued plus running jobs one user may have at once."

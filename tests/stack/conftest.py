@@ -126,6 +126,7 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
         "ATOMQ_LEASE_S": "2",
         "ATOMQ_RECONCILE_INTERVAL_S": "0.5",
         "ATOMQ_DISPATCH_GRACE_S": "1",
+        "ATOMQ_REDISPATCH_AFTER_S": "60",
     }
     log_dir = tmp_path / "logs"
     log_dir.mkdir(exist_ok=True)

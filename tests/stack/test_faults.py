@@ -68,6 +68,7 @@ class Chaos:
             "ATOMQ_LEASE_S": "3",
             "ATOMQ_RECONCILE_INTERVAL_S": "1",
             "ATOMQ_DISPATCH_GRACE_S": "2",
+            "ATOMQ_REDISPATCH_AFTER_S": "10",
             "ATOMQ_MAX_ATTEMPTS": "20",
         }
         self.redis: subprocess.Popen[bytes] | None = None
