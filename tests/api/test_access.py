@@ -42,27 +42,8 @@ from atomq_service.registry import register
 from atomq_service.settings import Settings
 from atomq_service.users import hash_token, issue_token
 from atomq_workers.execute import run_job
+from tests.api.bodies import SHORT_MD, SINGLE_POINT
 from tests.conftest import App
-
-# A Cu dimer 2.5 Angstrom apart: close to the fcc Cu nearest-neighbour distance,
-# a / sqrt(2) = 2.556 Angstrom for a = 3.615 Angstrom (Kittel; recalled from memory).
-CU_DIMER = {"numbers": [29, 29], "positions": [[0.0, 0.0, 0.0], [2.5, 0.0, 0.0]]}
-SINGLE_POINT = {"structure": CU_DIMER, "task": {"kind": "single_point"}, "calculator": "emt"}
-# A few MD steps, so that the job writes artifacts (a trajectory and a thermo log).
-SHORT_MD = {
-    "structure": CU_DIMER,
-    "task": {
-        "kind": "md",
-        "ensemble": "nve",
-        "temperature_K": 300.0,
-        "timestep_fs": 1.0,
-        "steps": 4,
-        "frame_interval": 2,
-        "thermo_interval": 2,
-        "seed": 7,
-    },
-    "calculator": "emt",
-}
 
 
 # -- the lab: two members, an admin, and credentials that must not work -------------------

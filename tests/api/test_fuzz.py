@@ -49,25 +49,9 @@ from atomq_service.models import ApiToken
 from atomq_service.settings import Settings
 from atomq_service.users import add_user, hash_token
 from atomq_workers.execute import run_job
+from tests.api.bodies import CU_DIMER, SHORT_MD, SINGLE_POINT
 from tests.conftest import POSTGRES_ADMIN_URL, App, port_open, unavailable
 
-# A Cu dimer 2.5 Angstrom apart (fcc Cu nearest neighbours are 2.556 Angstrom apart for
-# a = 3.615 Angstrom; Kittel, recalled from memory).
-CU_DIMER: dict[str, Any] = {"numbers": [29, 29], "positions": [[0.0, 0.0, 0.0], [2.5, 0.0, 0.0]]}
-SINGLE_POINT = {"structure": CU_DIMER, "task": {"kind": "single_point"}, "calculator": "emt"}
-SHORT_MD = {
-    **SINGLE_POINT,
-    "task": {
-        "kind": "md",
-        "ensemble": "nve",
-        "temperature_K": 300.0,
-        "timestep_fs": 1.0,
-        "steps": 4,
-        "frame_interval": 2,
-        "thermo_interval": 2,
-        "seed": 7,
-    },
-}
 INT64_MAX = 2**63 - 1  # SQLite's INTEGER and PostgreSQL's BIGINT hold no more
 
 

@@ -25,12 +25,8 @@ from atomq_service.api.limits import RateLimit
 from atomq_service.app import create_app
 from atomq_service.models import Job
 from atomq_service.settings import Settings
+from tests.api.bodies import SINGLE_POINT
 from tests.conftest import App
-
-# A Cu dimer 2.5 Angstrom apart (fcc Cu nearest neighbours are 2.556 Angstrom apart for
-# a = 3.615 Angstrom; Kittel, recalled from memory).
-CU_DIMER = {"numbers": [29, 29], "positions": [[0.0, 0.0, 0.0], [2.5, 0.0, 0.0]]}
-SINGLE_POINT = {"structure": CU_DIMER, "task": {"kind": "single_point"}, "calculator": "emt"}
 
 MakeApp = Callable[..., App]
 
