@@ -10,11 +10,11 @@ import pytest
 from ase import Atoms
 from ase.build import bulk
 from ase.calculators.emt import EMT
-from ase.eos import EquationOfState
 
 from atomq.tasks import MD
 from atomq_workers.artifacts import ArtifactWriter
 from atomq_workers.runners.md import run_md
+from tests.references import emt_cu_equilibrium_volume_per_atom
 
 
 def ignore_progress(*_args: object, **_kwargs: object) -> None:
@@ -44,17 +44,6 @@ def test_thermostats_hold_the_target_temperature(tmp_path: Path, thermostat: str
     assert result.analysis.energy_drift_meV_per_atom_per_ps is None  # NVE only
 
 
-def emt_equilibrium_volume_per_atom() -> float:
-    volumes, energies = [], []
-    for a in np.linspace(3.52, 3.66, 8):
-        atoms = bulk("Cu", "fcc", a=a)
-        atoms.calc = EMT()
-        volumes.append(atoms.get_volume())
-        energies.append(atoms.get_potential_energy())
-    v0, _, _ = EquationOfState(volumes, energies, eos="birchmurnaghan").fit()
-    return float(v0)
-
-
 @pytest.mark.parametrize("flexibility", ["isotropic", "anisotropic"])
 def test_npt_at_zero_pressure_finds_the_equilibrium_density(tmp_path: Path, flexibility: str):
     result = run(tmp_path, ensemble="npt", temperature_K=300, pressure_GPa=0.0, steps=2000,
@@ -65,7 +54,7 @@ def test_npt_at_zero_pressure_finds_the_equilibrium_density(tmp_path: Path, flex
     # Reference: EMT's 0 K equilibrium volume from an ASE equation-of-state fit, run here.
     # At 300 K a metal expands by well under 2 % in volume (common practice for Cu: about
     # 0.15 % per 100 K, recalled from memory), so the mean volume lies within 2 % above it.
-    v0 = emt_equilibrium_volume_per_atom() * 108
+    v0 = emt_cu_equilibrium_volume_per_atom() * 108
     assert 1.0 <= analysis.volume_mean_A3 / v0 < 1.02
     # Density from the same mean volume: 108 Cu atoms of 63.546 amu (IUPAC), in g/cm^3.
     expected = 108 * 63.546 / analysis.volume_mean_A3 * 1.66053906660
