@@ -87,6 +87,26 @@ class EmbeddedBroker:
             self._process = None
 
 
+def api_command(host: str, port: int, processes: int = 1) -> list[str]:
+    """The command line of an API server process (uvicorn over the app factory); the
+    environment's ATOMQ_* variables configure it."""
+    return [
+        sys.executable,
+        "-m",
+        "uvicorn",
+        "atomq_service.app:create_app",
+        "--factory",
+        "--host",
+        host,
+        "--port",
+        str(port),
+        "--workers",
+        str(processes),
+        "--log-level",
+        "warning",
+    ]
+
+
 def local_token(engine: Engine, url: str) -> str:
     """The token of this machine's local admin user, reusing the one in the client config."""
     path = config_path()
@@ -154,22 +174,7 @@ class EmbeddedStack:
         output = subprocess.DEVNULL if self.quiet else None
         self.processes.append(
             subprocess.Popen(
-                [
-                    sys.executable,
-                    "-m",
-                    "uvicorn",
-                    "atomq_service.app:create_app",
-                    "--factory",
-                    "--host",
-                    self.host,
-                    "--port",
-                    str(self.port),
-                    "--log-level",
-                    "warning",
-                ],
-                env=env,
-                stdout=output,
-                stderr=output,
+                api_command(self.host, self.port), env=env, stdout=output, stderr=output
             )
         )
         if self.workers > 0:

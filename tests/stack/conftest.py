@@ -22,6 +22,7 @@ from sqlmodel import Session, select
 from atomq import Client, SinglePoint, Structure
 from atomq.hashing import input_hash
 from atomq_service.db import create_schema, make_engine
+from atomq_service.embedded import api_command
 from atomq_service.models import Job, User
 from atomq_service.registry import seed_defaults
 from atomq_service.users import add_user
@@ -134,11 +135,13 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
     api_log = (log_dir / "api.log").open("wb")
     stack.processes.append(
         subprocess.Popen(
-            [sys.executable, "-m", "uvicorn", "atomq_service.app:create_app", "--factory",
-             "--host", "127.0.0.1", "--port", str(port), "--log-level", "warning"],
-            env=env, stdout=api_log, stderr=subprocess.STDOUT, start_new_session=True,
+            api_command("127.0.0.1", port),
+            env=env,
+            stdout=api_log,
+            stderr=subprocess.STDOUT,
+            start_new_session=True,
         )
-    )  # fmt: skip
+    )
     stack.start_worker(concurrency=workers)
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:

@@ -9,7 +9,6 @@ from __future__ import annotations
 import os
 import signal
 import subprocess
-import sys
 import time
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -22,6 +21,7 @@ from sqlmodel import Session, select
 
 from atomq import JobCreate, SinglePoint, Structure
 from atomq_service.db import create_schema, make_engine
+from atomq_service.embedded import api_command
 from atomq_service.models import Job
 from atomq_service.registry import seed_defaults
 from atomq_service.users import add_user
@@ -41,10 +41,11 @@ def test_concurrent_posts_to_two_api_processes_all_land(tmp_path: Path, redis_ur
     port = free_port()
     env = {**os.environ, "ATOMQ_DATABASE_URL": database_url, "ATOMQ_BROKER_URL": redis_url}
     api = subprocess.Popen(
-        [sys.executable, "-m", "uvicorn", "atomq_service.app:create_app", "--factory",
-         "--port", str(port), "--workers", "2", "--log-level", "warning"],
-        env=env, start_new_session=True, stderr=subprocess.PIPE,
-    )  # fmt: skip
+        api_command("127.0.0.1", port, processes=2),
+        env=env,
+        start_new_session=True,
+        stderr=subprocess.PIPE,
+    )
     url = f"http://127.0.0.1:{port}"
     try:
         deadline = time.monotonic() + 30

@@ -30,6 +30,7 @@ from sqlmodel import Session, select
 
 from atomq import MD, NEB, Client, JobState, Relax, SinglePoint
 from atomq_service.db import create_schema, make_engine
+from atomq_service.embedded import api_command
 from atomq_service.models import Artifact, Job, JobAttempt, JobResult
 from atomq_service.registry import seed_defaults
 from atomq_service.users import add_user
@@ -103,22 +104,7 @@ class Chaos:
         wait_until(lambda: port_answers(self.redis_port), 10, "Redis did not start")
 
     def start_api(self) -> None:
-        self.api = self._spawn(
-            "api",
-            [
-                sys.executable,
-                "-m",
-                "uvicorn",
-                "atomq_service.app:create_app",
-                "--factory",
-                "--host",
-                "127.0.0.1",
-                "--port",
-                str(self.api_port),
-                "--log-level",
-                "warning",
-            ],
-        )
+        self.api = self._spawn("api", api_command("127.0.0.1", self.api_port))
         wait_until(self.api_healthy, 30, "the API did not start")
 
     def start_worker(self) -> None:
