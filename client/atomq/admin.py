@@ -53,3 +53,15 @@ class CalculatorCreate(BaseModel):
     parameters: dict[str, JsonValue] = Field(default_factory=dict)
     elements: list[str] = Field(min_length=1)
     notes: str = Field(default="", max_length=4000, pattern=r"^[^\x00]*$")
+    weights_path: str | None = Field(
+        default=None,
+        max_length=4096,
+        pattern=r"^/[^\x00]*$",
+        description="Absolute path of the weights file, the same on the service and every "
+        "worker (a shared folder); the service records its sha256 and size.",
+    )
+    weights_sha256: str | None = Field(
+        default=None,
+        pattern=r"^[0-9a-f]{64}$",
+        description="Optional: the sha256 you expect; registration is refused if the file differs.",
+    )

@@ -12,6 +12,8 @@ import json
 import sys
 import warnings
 from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
+from pathlib import Path
 from typing import Any
 
 from atomq.client import Client, Job
@@ -19,6 +21,7 @@ from atomq.errors import AtomqError
 from atomq.tasks import MD, NEB, CellRelax, JobReference, Relax, SinglePoint, Task
 
 SERVER_EXTRA_HINT = "this command needs the server parts: pip install 'atomq[server]'"
+FRESH_HELP = "compute again even if an identical job already succeeded (default: reuse it)"
 
 
 def _server_settings(args: argparse.Namespace) -> Any:
@@ -64,7 +67,8 @@ def cmd_worker(args: argparse.Namespace) -> int:
         from atomq_workers.main import run_worker
     except ImportError as exc:
         raise SystemExit(f"{SERVER_EXTRA_HINT} ({exc})") from exc
-    run_worker(settings, args.concurrency, args.loglevel)
+    selection = [ref for item in args.calculators for ref in item.split(",") if ref]
+    run_worker(settings, args.concurrency, args.loglevel, selection or None)
     return 0
 
 
@@ -142,7 +146,9 @@ def cmd_submit(args: argparse.Namespace) -> int:
     images = ase.io.read(args.file, index=":")
     with _client(args) as client:
         for atoms in images:
-            job = client.submit(atoms, task, calculator=args.calculator, tags=args.tag)
+            job = client.submit(
+                atoms, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
+            )
             print(job.id)
             if args.wait:
                 _report_when_done(job)
@@ -169,7 +175,9 @@ def cmd_submit_neb(args: argparse.Namespace) -> int:
     except ValueError as exc:
         raise SystemExit(f"atomq submit-neb: {exc}") from exc
     with _client(args) as client:
-        job = client.submit(None, task, calculator=args.calculator, tags=args.tag)
+        job = client.submit(
+            None, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
+        )
         print(job.id)
         if args.wait:
             _report_when_done(job)
@@ -179,10 +187,29 @@ def cmd_submit_neb(args: argparse.Namespace) -> int:
 def _report_when_done(job: Job) -> None:
     info = job.wait(progress=True)
     note = " (NOT CONVERGED: max_steps reached)" if info.converged is False else ""
+    if info.reused_from is not None:
+        note += f" (reused from job {info.reused_from})"
     print(f"job {job.id} {info.state.value}{note}" + (f": {info.error}" if info.error else ""))
 
 
+def utc_time(text: str) -> datetime:
+    """An ISO 8601 date or time; one without a timezone is taken as UTC."""
+    try:
+        moment = datetime.fromisoformat(text)
+    except ValueError:
+        example = "2025-03-01 or 2025-03-01T14:30+01:00"
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not an ISO 8601 date or time (e.g. {example})"
+        ) from None
+    return moment if moment.tzinfo is not None else moment.replace(tzinfo=UTC)
+
+
 def cmd_jobs(args: argparse.Namespace) -> int:
+    package, version = None, None
+    if args.package is not None:
+        package, equals, version = args.package.partition("==")
+        if equals and not version:
+            raise SystemExit(f"atomq jobs: --package {args.package}: give a version after ==")
     with _client(args) as client:
         page = client.jobs(
             state=args.state,
@@ -190,11 +217,18 @@ def cmd_jobs(args: argparse.Namespace) -> int:
             calculator=args.calculator,
             kind=args.kind,
             tag=args.tag,
+            weights_sha256=args.weights_sha256,
+            package=package,
+            package_version=version or None,
+            created_after=args.since,
+            created_before=args.until,
             limit=args.limit,
         )
     print(f"{'id':>6}  {'state':<9}  {'kind':<12}  {'calculator':<16}  {'formula':<14}  owner")
     for job in page.items:
         flag = "  NOT CONVERGED" if job.converged is False else ""
+        if job.reused_from is not None:
+            flag += f"  reused from job {job.reused_from}"
         print(
             f"{job.id:>6}  {job.state.value:<9}  {job.kind:<12}  {job.calculator:<16}  "
             f"{job.formula:<14}  {job.owner}{flag}"
@@ -208,6 +242,12 @@ def cmd_show(args: argparse.Namespace) -> int:
         job = client.job(args.id)
         info = job.info()
         document: dict[str, Any] = {"job": info.model_dump(mode="json")}
+        if info.reused_from is not None:  # stderr, like the warning below: stdout is JSON
+            print(
+                f"job {info.id}: reused from job {info.reused_from} (same input hash; the "
+                "result was not computed again, its provenance names that job)",
+                file=sys.stderr,
+            )
         if info.state.value == "succeeded":
             with warnings.catch_warnings():  # said below, once, in the CLI's own words
                 warnings.simplefilter("ignore")
@@ -246,14 +286,128 @@ def cmd_cancel(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_compare(args: argparse.Namespace) -> int:
+    from atomq.comparisons import write_csv
+
+    with _client(args) as client:
+        if args.id is not None:
+            comparison = client.comparison(args.id)
+        elif not args.calculator:
+            raise SystemExit("atomq compare: give the candidate with --calculator name@version")
+        else:
+            comparison = client.compare(
+                args.calculator,
+                tag=args.tag,
+                job_ids=args.job or None,
+                baseline_calculator=args.baseline_calculator,
+                reuse=not args.fresh,
+            )
+        report = comparison.wait(args.timeout) if args.wait else comparison.report()
+    _print_comparison(report)
+    if args.csv:
+        with open(args.csv, "w", newline="", encoding="utf-8") as handle:
+            write_csv(report, handle)
+        print(f"wrote {args.csv}")
+    return 0
+
+
+def _print_comparison(report: Any) -> None:
+    """The table in readable units (the CSV keeps full precision, in eV)."""
+
+    def number(value: float | None, scale: float = 1.0) -> str:
+        return "" if value is None else f"{value * scale:+.4g}"
+
+    done = "complete" if report.complete else "candidate jobs still running"
+    print(f"comparison {report.id}: {report.selection}, rerun with {report.calculator} ({done})")
+    print(f"new jobs are tagged {report.tag}")
+    header = ("base", "cand", "kind", "formula", "state", "dE meV/atom", "max|dF| eV/A",
+              "dV %", "d barrier eV")  # fmt: skip
+    print(f"{header[0]:>6} {header[1]:>6}  {header[2]:<12} {header[3]:<14} {header[4]:<9} "
+          f"{header[5]:>12} {header[6]:>12} {header[7]:>10} {header[8]:>12}")  # fmt: skip
+    for row in report.rows:
+        print(
+            f"{row.baseline_job:>6} {row.candidate_job:>6}  {row.kind:<12} {row.formula:<14} "
+            f"{row.state.value:<9} {number(row.delta_energy_per_atom_eV, 1000):>12} "
+            f"{number(row.max_force_delta_eV_per_A):>12} {number(row.volume_change_percent):>10} "
+            f"{number(row.barrier_change_eV):>12}"
+        )
+    for metric, stats in report.summary.items():
+        if stats.count:
+            print(
+                f"{metric}: n={stats.count} mean={stats.mean:+.4g} mean|x|={stats.mean_abs:.4g} "
+                f"rms={stats.rms:.4g} max|x|={stats.max_abs:.4g}"
+            )
+    print("Model output: validate against experiment or higher-level theory before any design "
+          "or safety decision.")  # fmt: skip
+
+
 def cmd_calculators(args: argparse.Namespace) -> int:
     with _client(args) as client:
         calculators = client.calculators()
     for c in calculators:
         status = "retired" if c.retired else "active"
-        print(f"{c.ref:<20} {status:<8} backend={c.backend:<14} elements={','.join(c.elements)}")
-        if c.notes:
-            print(f"{'':<20} {c.notes}")
+        where = ", ".join(c.workers) if c.workers else "no live worker"
+        print(
+            f"{c.ref:<28} {status:<8} backend={c.backend:<14} jobs={c.jobs_run:<6} workers: {where}"
+        )
+    return 0
+
+
+def cmd_calculators_show(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        c = client.calculator(args.ref)
+    print(f"{c.ref}  ({'retired' if c.retired else 'active'})")
+    print(f"  backend     {c.backend}")
+    print(f"  parameters  {json.dumps(c.parameters, sort_keys=True)}")
+    weights = c.weights_path or ("shipped in the backend's package" if c.weights_sha256 else "")
+    if c.weights_sha256:
+        print(f"  weights     {weights} ({c.weights_size or 0:,} bytes)")
+        print(f"  sha256      {c.weights_sha256}")
+    print(f"  elements    {' '.join(c.elements)}")
+    print(f"  jobs run    {c.jobs_run}")
+    print(f"  workers     {', '.join(c.workers) or 'none live can run it'}")
+    for worker, why in c.unavailable.items():
+        print(f"  not on      {worker}: {why}")
+    print(f"  registered  {c.created_at:%Y-%m-%d %H:%M} UTC")
+    if c.notes:
+        print(f"  notes       {c.notes}")
+    return 0
+
+
+def cmd_calculators_add(args: argparse.Namespace) -> int:
+    from atomq.admin import CalculatorCreate
+
+    try:
+        parameters = json.loads(args.parameters)
+    except json.JSONDecodeError as exc:
+        raise SystemExit(
+            f"--parameters is not JSON ({exc}); write e.g. '{{\"model\": 1}}'"
+        ) from None
+    name, _, version = args.ref.partition("@")
+    record = CalculatorCreate(
+        name=name,
+        version=version,
+        backend=args.backend,
+        parameters=parameters,
+        elements=[e for item in args.elements for e in item.split(",") if e],
+        notes=args.notes,
+        weights_path=str(Path(args.weights).resolve()) if args.weights else None,
+        weights_sha256=args.sha256,
+    )
+    with _client(args) as client:
+        c = client.register_calculator(record)
+    print(
+        f"registered {c.ref}"
+        + (f" (weights sha256 {c.weights_sha256})" if c.weights_sha256 else "")
+    )
+    print("workers choose their calculators at start: restart the workers that should run it")
+    return 0
+
+
+def cmd_calculators_retire(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        c = client.retire_calculator(args.ref)
+    print(f"retired {c.ref}: new jobs are refused; its {c.jobs_run} jobs keep their records")
     return 0
 
 
@@ -279,7 +433,21 @@ def build_parser() -> argparse.ArgumentParser:
 
     worker = commands.add_parser("worker", help="run a worker that joins a service")
     _add_server_options(worker)
-    worker.add_argument("--concurrency", type=int, default=2, help="jobs run at once")
+    worker.add_argument(
+        "--concurrency",
+        type=int,
+        default=2,
+        help="jobs run at once (processes); each keeps its own loaded models, so an ML "
+        "worker usually wants fewer",
+    )
+    worker.add_argument(
+        "--calculators",
+        action="append",
+        default=[],
+        metavar="NAME[@VERSION],...",
+        help="serve only these calculators (repeatable); run one worker per group to give "
+        "each its own concurrency, e.g. ML models with --concurrency 1",
+    )
     worker.add_argument("--loglevel", default="INFO")
     worker.set_defaults(handler=cmd_worker)
 
@@ -321,6 +489,7 @@ def build_parser() -> argparse.ArgumentParser:
     submit.add_argument("--frame-interval", type=int, default=10, help="steps between frames")
     submit.add_argument("--tag", action="append", default=[])
     submit.add_argument("--wait", action="store_true", help="wait, showing progress")
+    submit.add_argument("--fresh", action="store_true", help=FRESH_HELP)
 
     neb = client_command("submit-neb", cmd_submit_neb, "a nudged elastic band between two ends")
     neb.add_argument("initial", help="a structure file, or the id of a finished job")
@@ -333,6 +502,7 @@ def build_parser() -> argparse.ArgumentParser:
     neb.add_argument("--max-steps", type=int, default=500)
     neb.add_argument("--tag", action="append", default=[])
     neb.add_argument("--wait", action="store_true", help="wait, showing progress")
+    neb.add_argument("--fresh", action="store_true", help=FRESH_HELP)
 
     jobs = client_command("jobs", cmd_jobs, "list jobs, newest first")
     jobs.add_argument("--state")
@@ -340,6 +510,22 @@ def build_parser() -> argparse.ArgumentParser:
     jobs.add_argument("--calculator")
     jobs.add_argument("--kind")
     jobs.add_argument("--tag")
+    jobs.add_argument("--weights-sha256", help="calculator versions with these weights")
+    jobs.add_argument(
+        "--package",
+        metavar="NAME[==VERSION]",
+        help="jobs whose result was computed with this package, e.g. sevenn or ase==3.23.0",
+    )
+    jobs.add_argument(
+        "--since",
+        type=utc_time,
+        help="created at or after this ISO 8601 date or time; without a zone it is UTC",
+    )
+    jobs.add_argument(
+        "--until",
+        type=utc_time,
+        help="created before this ISO 8601 date or time; without a zone it is UTC",
+    )
     jobs.add_argument("--limit", type=int, default=50)
 
     show = client_command("show", cmd_show, "a job with its result summary and provenance")
@@ -356,7 +542,48 @@ def build_parser() -> argparse.ArgumentParser:
     cancel = client_command("cancel", cmd_cancel, "cancel a job")
     cancel.add_argument("id", type=int)
 
-    client_command("calculators", cmd_calculators, "list registered calculator versions")
+    compare = client_command(
+        "compare", cmd_compare, "rerun finished jobs with another calculator and compare"
+    )
+    chosen = compare.add_mutually_exclusive_group(required=True)
+    chosen.add_argument("--tag", help="compare every job with this tag")
+    chosen.add_argument("--job", type=int, action="append", help="a job id (repeat it)")
+    chosen.add_argument("--id", type=int, help="show an existing comparison instead")
+    compare.add_argument("--calculator", help="the candidate: 'name' or 'name@version'")
+    compare.add_argument("--baseline-calculator", help="only jobs run with this calculator")
+    compare.add_argument("--wait", action="store_true", help="wait for every candidate job")
+    compare.add_argument("--timeout", type=float, default=None, help="seconds to wait")
+    compare.add_argument("--csv", help="also write the rows to this CSV file")
+    compare.add_argument(
+        "--fresh", action="store_true", help="compute again even if identical results exist"
+    )
+
+    calculators = client_command(
+        "calculators", cmd_calculators, "list calculator versions, or show/add/retire one"
+    )
+    calculator_commands = calculators.add_subparsers(dest="calculator_command")
+    show = calculator_commands.add_parser("show", help="one version in full")
+    show.add_argument("ref", help="name@version")
+    add = calculator_commands.add_parser("add", help="admin: register a new version")
+    add.add_argument("ref", help="name@version of the new record (records never change)")
+    add.add_argument("--backend", required=True, help="installed backend entry point")
+    add.add_argument("--parameters", default="{}", help="fixed parameters as JSON")
+    add.add_argument(
+        "--elements", action="append", required=True, help="elements covered, e.g. Cu,Ni,Al"
+    )
+    add.add_argument("--weights", help="weights file, on a folder the workers share")
+    add.add_argument("--sha256", help="refuse registration unless the file has this sha256")
+    add.add_argument("--notes", default="", help="free text: source, training set, caveats")
+    retire = calculator_commands.add_parser("retire", help="admin: refuse new jobs for it")
+    retire.add_argument("ref", help="name@version")
+    for sub, handler in (
+        (show, cmd_calculators_show),
+        (add, cmd_calculators_add),
+        (retire, cmd_calculators_retire),
+    ):
+        sub.add_argument("--url", help=argparse.SUPPRESS)
+        sub.add_argument("--token", help=argparse.SUPPRESS)
+        sub.set_defaults(handler=handler)
     return parser
 
 

@@ -9,6 +9,7 @@ import time
 import uuid
 import warnings
 from collections.abc import Iterator
+from datetime import datetime
 from pathlib import Path
 from typing import Any, Literal, TextIO, overload
 
@@ -19,6 +20,8 @@ from ase.calculators.singlepoint import SinglePointCalculator
 from pydantic import TypeAdapter
 
 from atomq import config
+from atomq.admin import CalculatorCreate
+from atomq.comparisons import Comparison, ComparisonCreate, ComparisonPublic
 from atomq.errors import (
     AtomqError,
     AuthenticationFailed,
@@ -27,7 +30,7 @@ from atomq.errors import (
     NotFound,
     ServerError,
 )
-from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
+from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState, WorkerPublic
 from atomq.results import ArtifactRecord, Provenance, Result
 from atomq.structure import Structure
 from atomq.tasks import Task
@@ -99,10 +102,13 @@ class Client:
         calculator: str,
         tags: list[str] | None = None,
         time_limit_s: float | None = None,
+        reuse: bool = True,
     ) -> Job:
         """Queue one calculation; returns at once with a Job handle.
 
-        For NEB pass atoms=None: the endpoints are part of the task.
+        For NEB pass atoms=None: the endpoints are part of the task. If a job with the same
+        input hash already succeeded, the new job is answered at once with a copy of its
+        result (`info().reused_from` names it); reuse=False computes it again.
         """
         structure = (
             atoms if atoms is None or isinstance(atoms, Structure) else Structure.from_atoms(atoms)
@@ -113,6 +119,7 @@ class Client:
             calculator=calculator,
             tags=tags or [],
             time_limit_s=time_limit_s,
+            reuse=reuse,
         )
         response = self.request(
             "POST",
@@ -135,10 +142,20 @@ class Client:
         calculator: str | None = None,
         kind: str | None = None,
         tag: str | None = None,
+        weights_sha256: str | None = None,
+        package: str | None = None,
+        package_version: str | None = None,
+        created_after: datetime | None = None,
+        created_before: datetime | None = None,
         offset: int = 0,
         limit: int = 100,
     ) -> JobPage:
-        """List jobs, newest first, filtered by any of the given fields."""
+        """List jobs, newest first, matching every given filter.
+
+        `package` (a distribution name, any version) with an optional exact
+        `package_version` finds jobs whose result was computed with it;
+        `created_after` <= created < `created_before` take timezone-aware datetimes.
+        """
         params: dict[str, str | int] = {"offset": offset, "limit": limit}
         for key, value in (
             ("state", state),
@@ -146,8 +163,15 @@ class Client:
             ("calculator", calculator),
             ("kind", kind),
             ("tag", tag),
+            ("weights_sha256", weights_sha256),
+            ("package", package),
+            ("package_version", package_version),
+            ("created_after", created_after),
+            ("created_before", created_before),
         ):
-            if value is not None:
+            if isinstance(value, datetime):
+                params[key] = value.isoformat()
+            elif value is not None:
                 params[key] = str(value)
         response = self.request("GET", "/v1/jobs", params=params)
         return JobPage.model_validate_json(response.content)
@@ -157,9 +181,79 @@ class Client:
         document: dict[str, Any] = self.request("GET", "/v1/prov-json", params={"tag": tag}).json()
         return document
 
+    # -- comparisons (model-swap reports) -----------------------------------------
+    def compare(
+        self,
+        calculator: str,
+        *,
+        tag: str | None = None,
+        job_ids: list[int] | None = None,
+        baseline_calculator: str | None = None,
+        tags: list[str] | None = None,
+        time_limit_s: float | None = None,
+        reuse: bool = True,
+    ) -> Comparison:
+        """Rerun finished jobs (by `tag` or `job_ids`, optionally only those run with
+        `baseline_calculator`) under `calculator`, as one batch; returns at once with a
+        handle whose report() / wait() / dataframe() give the per-job deltas. reuse=False
+        computes every rerun again even where an identical finished job exists."""
+        body = ComparisonCreate(
+            tag=tag,
+            job_ids=job_ids,
+            baseline_calculator=baseline_calculator,
+            calculator=calculator,
+            tags=tags or [],
+            time_limit_s=time_limit_s,
+            reuse=reuse,
+        )
+        response = self.request(
+            "POST",
+            "/v1/comparisons",
+            content=body.model_dump_json(),
+            headers={"Content-Type": "application/json", "Idempotency-Key": uuid.uuid4().hex},
+        )
+        report = ComparisonPublic.model_validate_json(response.content)
+        return Comparison(self, report.id, report)
+
+    def comparison(self, comparison_id: int) -> Comparison:
+        """A handle to an existing comparison, with its current report."""
+        response = self.request("GET", f"/v1/comparisons/{comparison_id}")
+        report = ComparisonPublic.model_validate_json(response.content)
+        return Comparison(self, comparison_id, report)
+
     def calculators(self) -> list[CalculatorPublic]:
+        """Every registered version, with job counts and the live workers that run it."""
         response = self.request("GET", "/v1/calculators")
         return [CalculatorPublic.model_validate(item) for item in response.json()]
+
+    def calculator(self, ref: str) -> CalculatorPublic:
+        """One version, 'name@version'."""
+        name, version = _split_ref(ref)
+        response = self.request("GET", f"/v1/calculators/{name}/{version}")
+        return CalculatorPublic.model_validate_json(response.content)
+
+    def workers(self) -> list[WorkerPublic]:
+        """Live workers and the calculator versions each can (and cannot) run."""
+        response = self.request("GET", "/v1/workers")
+        return [WorkerPublic.model_validate(item) for item in response.json()]
+
+    def register_calculator(self, record: CalculatorCreate) -> CalculatorPublic:
+        """Admin: add a new immutable version (a weights path is hashed by the service)."""
+        response = self.request("POST", "/v1/calculators", json=record.model_dump(mode="json"))
+        return CalculatorPublic.model_validate_json(response.content)
+
+    def retire_calculator(self, ref: str) -> CalculatorPublic:
+        """Admin: refuse new jobs for this version; its records and results stay."""
+        name, version = _split_ref(ref)
+        response = self.request("POST", f"/v1/calculators/{name}/{version}/retire")
+        return CalculatorPublic.model_validate_json(response.content)
+
+
+def _split_ref(ref: str) -> tuple[str, str]:
+    name, _, version = ref.partition("@")
+    if not name or not version:
+        raise ValueError(f"{ref!r} is not a calculator version; write it as name@version")
+    return name, version
 
 
 class Job:

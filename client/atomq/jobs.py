@@ -44,6 +44,13 @@ class JobCreate(BaseModel):
     time_limit_s: float | None = Field(
         default=None, gt=0, description="Wall-time limit; at most the service's own limit."
     )
+    reuse: bool = Field(
+        default=True,
+        description="Set false to compute again even if an identical finished job exists. "
+        "When true, a job whose input hash (structure, task, calculator version, seed) "
+        "matches a job that succeeded is answered at once with a copy of that result. MD "
+        "jobs without a seed get a random one from the service, so they are never reused.",
+    )
 
     @model_validator(mode="after")
     def _structure_matches_task(self) -> JobCreate:
@@ -91,7 +98,17 @@ class JobPublic(BaseModel):
     converged: bool | None = Field(
         default=None, description="Relax and NEB: False means max_steps came first."
     )
+    reused_from: int | None = Field(
+        default=None,
+        description="The earlier job with the same input hash whose result this job took "
+        "instead of computing it again; its provenance names that job.",
+    )
     error: str | None
+    waiting_reason: str | None = Field(
+        default=None,
+        description="For a queued job that no live worker can run: why (no worker running, "
+        "or each worker's reason). None while a worker that can run it is busy.",
+    )
 
 
 class JobPage(BaseModel):
@@ -108,7 +125,36 @@ class CalculatorPublic(BaseModel):
     backend: str
     parameters: dict[str, JsonValue]
     elements: list[str]
-    weights_sha256: str | None
+    weights_path: str | None = Field(
+        default=None,
+        description="A registered weights file on the workers; none for no weights or for a "
+        "checkpoint shipped inside the backend's package (found in each installation).",
+    )
+    weights_sha256: str | None = Field(
+        default=None, description="Every worker checks the file against this before loading."
+    )
+    weights_size: int | None = None
     notes: str
     retired: bool
+    jobs_run: int = Field(default=0, description="Jobs this version has run (attempted).")
+    workers: list[str] = Field(
+        default_factory=list, description="Live workers that can run this version now."
+    )
+    unavailable: dict[str, str] = Field(
+        default_factory=dict,
+        description="Live workers that cannot run it, each with the reason.",
+    )
     created_at: datetime
+
+
+class WorkerPublic(BaseModel):
+    """A live worker: the calculator versions it serves and why it cannot serve others."""
+
+    name: str
+    host: str
+    pid: int
+    concurrency: int
+    calculators: list[str]
+    unavailable: dict[str, str]
+    started_at: datetime
+    last_seen: datetime

@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import hashlib
+import re
 import secrets
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from datetime import UTC, datetime
 from pathlib import Path
 
 from sqlalchemy import func
@@ -18,7 +20,17 @@ from atomq.structure import Structure
 from atomq.tasks import MD, NEB, JobReference
 from atomq_service import registry
 from atomq_service.errors import ApiError
-from atomq_service.models import Artifact, Job, JobResult, JobTag, User, utcnow
+from atomq_service.models import (
+    Artifact,
+    Calculator,
+    Job,
+    JobPackage,
+    JobResult,
+    JobTag,
+    User,
+    utcnow,
+)
+from atomq_service.presence import waiting_reasons
 from atomq_service.settings import Settings
 from atomq_service.validation import check_job
 
@@ -45,14 +57,8 @@ def find_by_idempotency_key(
     return earlier
 
 
-def create_job(
-    session: Session,
-    owner: User,
-    request: JobCreate,
-    settings: Settings,
-    idempotency_key: str | None = None,
-) -> Job:
-    """Validate and record a job (state queued). Raises ApiError before writing anything."""
+def check_queue_limit(session: Session, owner: User, settings: Settings) -> None:
+    """Refuse new queued work past the per-user limit (a reused result queues nothing)."""
     active = session.exec(
         select(func.count())
         .select_from(Job)
@@ -69,6 +75,37 @@ def create_job(
             f"{settings.max_queued_per_user} per user (ATOMQ_MAX_QUEUED_PER_USER); "
             "submit more when some have finished",
         )
+
+
+def find_reusable(session: Session, input_hash_: str) -> tuple[Job, JobResult] | None:
+    """The oldest job that computed this very input and succeeded, with its result. Only
+    jobs that ran themselves qualify (reused_from is null), so a copy is never copied."""
+    found = session.exec(
+        select(Job, JobResult)
+        .join(JobResult, col(JobResult.job_id) == col(Job.id))
+        .where(
+            Job.input_hash == input_hash_,
+            Job.state == JobState.succeeded.value,
+            col(Job.reused_from).is_(None),
+        )
+        .order_by(col(Job.id))
+        .limit(1)
+    ).first()
+    return None if found is None else (found[0], found[1])
+
+
+def create_job(
+    session: Session,
+    owner: User,
+    request: JobCreate,
+    settings: Settings,
+    idempotency_key: str | None = None,
+) -> Job:
+    """Validate and record a job. Raises ApiError before writing anything.
+
+    The job is queued, unless its input hash matches a job that succeeded and the request
+    allows reuse: then it is recorded succeeded at once with a copy of that job's result
+    (reused_from names it) and must not be dispatched."""
     calculator = registry.resolve(session, request.calculator)
     task = request.task
     parents: list[int] = []
@@ -99,6 +136,10 @@ def create_job(
     assert owner.id is not None and calculator.id is not None
     seed = task.seed if isinstance(task, MD) else None
     structure = structures[0]
+    hashed = input_hash(structure, task, calculator.ref, seed)
+    reusable = find_reusable(session, hashed) if request.reuse else None
+    if reusable is None:  # only work that will queue counts against the limit
+        check_queue_limit(session, owner, settings)
     job = Job(
         owner_id=owner.id,
         kind=task.kind,
@@ -108,19 +149,59 @@ def create_job(
         structure=structure.model_dump(mode="json"),
         natoms=structure.natoms,
         formula=structure.chemical_formula(),
-        input_hash=input_hash(structure, task, calculator.ref, seed),
+        input_hash=hashed,
         seed=seed,
         parents=parents,
         time_limit_s=time_limit_s,
         idempotency_key=idempotency_key,
         request_sha256=request_fingerprint(request),
     )
+    if reusable is not None:
+        original = reusable[0]
+        now = utcnow()
+        job.state = JobState.succeeded.value
+        job.reused_from = original.id
+        job.converged = original.converged
+        job.created_at = job.started_at = job.finished_at = now
     session.add(job)
     session.flush()
     assert job.id is not None
     for tag in tags:
         session.add(JobTag(job_id=job.id, tag=tag))
+    if reusable is not None:
+        copy_result(session, job.id, *reusable)
     return job
+
+
+def copy_result(session: Session, job_id: int, original: Job, stored: JobResult) -> None:
+    """The original's result and provenance, unchanged: the provenance still names the job
+    and worker that computed the numbers. Its package rows come along, so an audit query
+    for a package version finds every job whose result that version produced."""
+    session.add(JobResult(job_id=job_id, result=stored.result, provenance=stored.provenance))
+    for package, version in session.exec(
+        select(JobPackage.package, JobPackage.version).where(JobPackage.job_id == original.id)
+    ).all():
+        session.add(JobPackage(job_id=job_id, package=package, version=version))
+
+
+def canonical_package(name: str) -> str:
+    """A distribution name in its normal form (PEP 503: lower case, runs of - _ . as one
+    -), so 'Mace_Torch' and 'mace-torch' are the same package in records and queries."""
+    return re.sub(r"[-_.]+", "-", name).lower()
+
+
+def package_rows(job_id: int, packages: Mapping[str, str]) -> list[JobPackage]:
+    """The JobPackage rows for a result's provenance `packages` (name -> version). A
+    package the worker recorded as "not installed" has no version to find it by."""
+    versions = {
+        canonical_package(name): version
+        for name, version in packages.items()
+        if version != "not installed"  # atomq_workers.provenance.package_version's word
+    }
+    return [
+        JobPackage(job_id=job_id, package=name, version=version)
+        for name, version in sorted(versions.items())
+    ]
 
 
 def resolve_endpoint(
@@ -151,7 +232,7 @@ def get_job(session: Session, job_id: int) -> Job:
 
 
 def to_public(session: Session, jobs: Sequence[Job]) -> list[JobPublic]:
-    """Convert rows to the wire form with two queries in all (owners, tags), never N+1."""
+    """Convert rows to the wire form with a fixed number of queries, never N+1."""
     if not jobs:
         return []
     ids = [job.id for job in jobs]
@@ -162,6 +243,7 @@ def to_public(session: Session, jobs: Sequence[Job]) -> list[JobPublic]:
         select(JobTag.job_id, JobTag.tag).where(col(JobTag.job_id).in_(ids)).order_by(JobTag.tag)
     ).all():
         tags[job_id].append(tag)
+    waiting = waiting_reasons(session, jobs)  # one more query, only if some are queued
     return [
         JobPublic.model_validate(
             {
@@ -169,10 +251,32 @@ def to_public(session: Session, jobs: Sequence[Job]) -> list[JobPublic]:
                 "owner": owners[job.owner_id],
                 "calculator": job.calculator_ref,
                 "tags": tags[job.id] if job.id is not None else [],
+                "waiting_reason": waiting.get(job.id) if job.id is not None else None,
             }
         )
         for job in jobs
     ]
+
+
+def _as_utc(name: str, value: datetime) -> datetime:
+    """A filter time in UTC, the form timestamps are stored in (SQLite keeps no zone, so a
+    value with another offset would be compared as if its wall time were UTC)."""
+    if value.tzinfo is None or value.utcoffset() is None:
+        raise ApiError(
+            422,
+            "naive_datetime",
+            f"{name} {value.isoformat()} has no timezone; add one, e.g. "
+            f"{value.isoformat()}Z for UTC or {value.isoformat()}+02:00",
+        )
+    try:
+        return value.astimezone(UTC)
+    except OverflowError:
+        raise ApiError(
+            422,
+            "datetime_out_of_range",
+            f"{name} {value.isoformat()} lies outside the years 1 to 9999 in UTC; "
+            "give a time within them",
+        ) from None
 
 
 def list_jobs(
@@ -183,9 +287,32 @@ def list_jobs(
     calculator: str | None = None,
     kind: str | None = None,
     tag: str | None = None,
+    weights_sha256: str | None = None,
+    package: str | None = None,
+    package_version: str | None = None,
+    created_after: datetime | None = None,
+    created_before: datetime | None = None,
     offset: int = 0,
     limit: int = 100,
 ) -> JobPage:
+    """Jobs matching every given filter, newest first. Times: created_after <= created_at
+    < created_before."""
+    if package_version is not None and package is None:
+        raise ApiError(
+            422,
+            "package_version_without_package",
+            f"package_version {package_version!r} needs package: name the package too, "
+            f"e.g. package=ase&package_version={package_version}",
+        )
+    after = None if created_after is None else _as_utc("created_after", created_after)
+    before = None if created_before is None else _as_utc("created_before", created_before)
+    if after is not None and before is not None and after >= before:
+        raise ApiError(
+            422,
+            "empty_time_range",
+            f"created_after {after.isoformat()} is not earlier than created_before "
+            f"{before.isoformat()}, so no job can match; swap or widen them",
+        )
     query = select(Job)
     if state is not None:
         query = query.where(Job.state == state.value)
@@ -203,6 +330,21 @@ def list_jobs(
         query = query.where(Job.kind == kind)
     if tag is not None:
         query = query.join(JobTag, col(JobTag.job_id) == col(Job.id)).where(JobTag.tag == tag)
+    if weights_sha256 is not None:
+        query = query.join(Calculator, col(Calculator.id) == col(Job.calculator_id)).where(
+            Calculator.weights_sha256 == weights_sha256.lower()
+        )
+    if package is not None:
+        # (job_id, package) is the key, so the join adds at most one row per job.
+        query = query.join(JobPackage, col(JobPackage.job_id) == col(Job.id)).where(
+            JobPackage.package == canonical_package(package)
+        )
+        if package_version is not None:
+            query = query.where(JobPackage.version == package_version)
+    if after is not None:
+        query = query.where(col(Job.created_at) >= after)
+    if before is not None:
+        query = query.where(col(Job.created_at) < before)
     total = session.exec(select(func.count()).select_from(query.subquery())).one()
     rows = session.exec(query.order_by(col(Job.id).desc()).offset(offset).limit(limit)).all()
     return JobPage(items=to_public(session, rows), total=total, offset=offset, limit=limit)
@@ -235,8 +377,11 @@ def get_result(session: Session, job: Job) -> JobResult:
 
 
 def list_artifacts(session: Session, job: Job) -> Sequence[Artifact]:
+    """The files the job wrote; for a reused job, those of the job that computed the result
+    (its provenance lists the same ones)."""
+    source = job.id if job.reused_from is None else job.reused_from
     return session.exec(
-        select(Artifact).where(Artifact.job_id == job.id).order_by(col(Artifact.id))
+        select(Artifact).where(Artifact.job_id == source).order_by(col(Artifact.id))
     ).all()
 
 

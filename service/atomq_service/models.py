@@ -59,8 +59,12 @@ class Calculator(SQLModel, table=True):
     backend: str  # entry point name in group atomq.calculators
     parameters: dict[str, Any] = Field(default_factory=dict, sa_column=Column(JSON))
     elements: list[str] = Field(default_factory=list, sa_column=Column(JSON))
+    # A user's weights file: its path on the workers (a shared folder). A checkpoint that
+    # ships inside a package has no path: each worker finds it in its own installation.
+    # Either way the sha256 is the identity every worker checks before loading.
     weights_path: str | None = None
-    weights_sha256: str | None = None
+    weights_sha256: str | None = Field(default=None, index=True)
+    weights_size: int | None = None
     notes: str = ""
     retired: bool = False
     created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
@@ -97,6 +101,8 @@ class Job(SQLModel, table=True):
     request_sha256: str | None = None  # what the key was first used for
     # Set once the broker accepted the job's message; the reconciler re-sends the rest.
     dispatched_at: datetime | None = Field(default=None, sa_type=UTCDateTime, index=True)
+    # Set when the result was taken from an earlier job with the same input hash.
+    reused_from: int | None = Field(default=None, foreign_key="job.id", index=True)
     converged: bool | None = None  # relax and NEB: False is shown prominently everywhere
     progress: dict[str, Any] | None = Field(default=None, sa_column=Column(JSON))
     error: str | None = None
@@ -104,6 +110,35 @@ class Job(SQLModel, table=True):
     created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime, index=True)
     started_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
     finished_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
+
+
+class JobPackage(SQLModel, table=True):
+    """The version of each package a result was computed with, from its provenance, kept
+    as rows so "every job run with sevenn 0.13.0" is an indexed query."""
+
+    job_id: int = Field(foreign_key="job.id", primary_key=True)
+    package: str = Field(primary_key=True, index=True)
+    version: str = Field(index=True)
+
+
+class Worker(SQLModel, table=True):
+    """A running `atomq worker` and the calculator versions it can run, renewed by its
+    heartbeat; a record not seen for a few heartbeats belongs to a worker that is gone."""
+
+    id: int | None = Field(default=None, primary_key=True)
+    name: str = Field(unique=True, index=True)  # celery's hostname, atomq-PID@HOST
+    host: str
+    pid: int
+    concurrency: int
+    heartbeat_s: float  # its renewal interval: unseen for three of them means gone
+    calculators: list[str] = Field(default_factory=list, sa_column=Column(JSON, nullable=False))
+    # ref -> why this worker cannot run it (backend missing, weights differ, ...).
+    unavailable: dict[str, str] = Field(
+        default_factory=dict, sa_column=Column(JSON, nullable=False)
+    )
+    started_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+    last_seen: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime, index=True)
+    stopped_at: datetime | None = Field(default=None, sa_type=UTCDateTime)
 
 
 class JobAttempt(SQLModel, table=True):
@@ -147,3 +182,27 @@ class JobResult(SQLModel, table=True):
     result: dict[str, Any] = Field(sa_column=Column(JSON, nullable=False))
     provenance: dict[str, Any] = Field(sa_column=Column(JSON, nullable=False))
     created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+
+
+class Comparison(SQLModel, table=True):
+    """A model-swap report: finished jobs rerun under another calculator version."""
+
+    # A client's retry of the same request (same owner, same key) finds this row.
+    __table_args__ = (UniqueConstraint("owner_id", "idempotency_key"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    owner_id: int = Field(foreign_key="user.id", index=True)
+    calculator_id: int = Field(foreign_key="calculator.id", index=True)
+    calculator_ref: str = Field(index=True)  # the candidate, name@version
+    selection: str  # how the baseline jobs were chosen, in words
+    idempotency_key: str | None = None
+    request_sha256: str | None = None
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime, index=True)
+
+
+class ComparisonItem(SQLModel, table=True):
+    """One baseline job of a comparison and the job that reran it."""
+
+    comparison_id: int = Field(foreign_key="comparison.id", primary_key=True)
+    baseline_job_id: int = Field(foreign_key="job.id", primary_key=True, index=True)
+    candidate_job_id: int = Field(foreign_key="job.id", unique=True, index=True)

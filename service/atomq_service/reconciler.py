@@ -11,6 +11,9 @@ Every few seconds it re-sends the message of
 - a running job whose lease expired (its worker died; the next delivery takes it over
   as a new attempt, or ends it failed after ATOMQ_MAX_ATTEMPTS).
 A duplicate message is harmless: workers claim jobs with a conditional update.
+Only queued and running jobs are ever sent. A job answered at once from an earlier
+result (reused_from) is recorded succeeded, has no message and no dispatched_at, and is
+never sent.
 """
 
 from __future__ import annotations

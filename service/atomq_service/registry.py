@@ -6,16 +6,21 @@ are stored in the record so the service can refuse uncovered elements itself.
 
 from __future__ import annotations
 
+import hashlib
+from collections.abc import Sequence
+from pathlib import Path
 from typing import Any
 
 from ase.calculators.emt import parameters as emt_parameters
 from ase.data import chemical_symbols
-from sqlalchemy import Engine
-from sqlmodel import Session, select
+from sqlalchemy import Engine, func
+from sqlmodel import Session, col, select
 
+from atomq.jobs import CalculatorPublic
 from atomq_service.db import transaction
 from atomq_service.errors import ApiError
-from atomq_service.models import Calculator
+from atomq_service.models import Calculator, Job
+from atomq_service.presence import live_workers
 
 ALL_ELEMENTS: list[str] = list(chemical_symbols[1:119])  # H .. Og
 
@@ -143,3 +148,65 @@ def resolve(session: Session, reference: str) -> Calculator:
         f"calculator {name!r} has no version {version!r}; versions: "
         + ", ".join(c.version for c in versions),
     )
+
+
+def weights_identity(path: str, expected_sha256: str | None) -> tuple[str, int]:
+    """sha256 and size of a weights file being registered, read on the service machine."""
+    file = Path(path)
+    if not file.is_file():
+        raise ApiError(
+            422,
+            "weights_not_found",
+            f"weights file {path} is not readable on the service machine; put it in a folder "
+            "the service and the workers share, and give its absolute path",
+        )
+    digest = hashlib.sha256()
+    with file.open("rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    sha256 = digest.hexdigest()
+    if expected_sha256 is not None and expected_sha256 != sha256:
+        raise ApiError(
+            422,
+            "weights_sha256_mismatch",
+            f"weights file {path} has sha256 {sha256}, not the {expected_sha256} you gave; "
+            "check that it is the file you meant",
+        )
+    return sha256, file.stat().st_size
+
+
+def find(session: Session, name: str, version: str) -> Calculator:
+    calculator = session.exec(
+        select(Calculator).where(Calculator.name == name, Calculator.version == version)
+    ).first()
+    if calculator is None:
+        raise ApiError(404, "calculator_not_found", f"no calculator {name}@{version}")
+    return calculator
+
+
+def to_public(session: Session, calculators: Sequence[Calculator]) -> list[CalculatorPublic]:
+    """Records with how many jobs each ran and which live workers can (or cannot) run it:
+    two queries for any number of versions."""
+    ids = [c.id for c in calculators]
+    runs = dict(
+        session.exec(
+            select(Job.calculator_id, func.count())
+            .where(col(Job.calculator_id).in_(ids), Job.attempts > 0)
+            .group_by(col(Job.calculator_id))
+        ).all()
+    )
+    workers = live_workers(session)
+    return [
+        CalculatorPublic.model_validate(
+            {
+                **c.model_dump(),
+                "ref": c.ref,
+                "jobs_run": runs.get(c.id or 0, 0),
+                "workers": [w.name for w in workers if c.ref in w.calculators],
+                "unavailable": {
+                    w.name: w.unavailable[c.ref] for w in workers if c.ref in w.unavailable
+                },
+            }
+        )
+        for c in calculators
+    ]

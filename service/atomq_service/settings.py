@@ -59,6 +59,18 @@ class Settings(BaseSettings):
         "(a message can be stranded in a dead worker's unacknowledged set); duplicates are "
         "harmless.",
     )
+    model_cache_mb: int = Field(
+        default=8192,
+        ge=0,
+        description="Memory each worker process may fill with loaded calculator versions; "
+        "beyond it the least recently used are dropped (one ML model takes 0.5-5 GB).",
+    )
+    worker_heartbeat_s: float = Field(
+        default=10.0,
+        gt=0,
+        description="How often a worker renews its record; one unseen for three heartbeats "
+        "counts as gone.",
+    )
     max_body_bytes: int = Field(default=64 * 1024 * 1024, description="Largest request body.")
     max_queued_per_user: int = Field(
         default=20_000, description="Queued plus running jobs one user may have at once."

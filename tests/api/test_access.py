@@ -33,6 +33,7 @@ from sqlalchemy import Engine, inspect, text
 from sqlmodel import Session, col, select
 
 from atomq_service.api.admin import router as admin_router
+from atomq_service.api.comparisons import router as comparisons_router
 from atomq_service.api.routes import public_router
 from atomq_service.api.routes import router as jobs_router
 from atomq_service.app import create_app
@@ -157,12 +158,16 @@ MATRIX: dict[tuple[str, str], tuple[str, ...]] = {
     ("GET", "/v1/calculators"): (*DENIED, "200", "200", "200"),
     ("POST", "/v1/calculators"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "201"),
     ("POST", "/v1/calculators/{name}/{version}/retire"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
+    ("GET", "/v1/calculators/{name}/{version}"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/workers"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/me"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/users"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
     ("POST", "/v1/users"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "201"),
     ("POST", "/v1/users/{name}/tokens"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "201"),
     ("GET", "/v1/users/{name}/tokens"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
     ("POST", "/v1/tokens/{token_id}/revoke"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
+    ("POST", "/v1/comparisons"): (*DENIED, "201", "201", "201"),
+    ("GET", "/v1/comparisons/{comparison_id}"): (*DENIED, "200", "200", "200"),
 }
 
 
@@ -190,6 +195,8 @@ def prepare(lab: Lab, method: str, route: str) -> tuple[str, dict[str, Any] | No
         with transaction(lab.engine) as session:
             register(session, name=f"to-retire-{n}", version="1", backend="emt", elements=["Cu"])
         return f"/v1/calculators/to-retire-{n}/1/retire", None
+    if route == "/v1/calculators/{name}/{version}":
+        return "/v1/calculators/emt/1", None
     if route == "/v1/prov-json":
         return f"{route}?tag=screening", None
     if (method, route) == ("POST", "/v1/users"):
@@ -202,6 +209,16 @@ def prepare(lab: Lab, method: str, route: str) -> tuple[str, dict[str, Any] | No
             newest = session.exec(select(ApiToken).order_by(col(ApiToken.id).desc())).first()
             assert newest is not None
         return f"/v1/tokens/{newest.id}/revoke", None
+    if route.startswith("/v1/comparisons"):
+        # The finished job rerun under a calculator version of the cell's own.
+        with transaction(lab.engine) as session:
+            register(session, name=f"swap-{n}", version="1", backend="emt", elements=["Cu"])
+        body = {"job_ids": [job], "calculator": f"swap-{n}@1"}
+        if method == "POST":
+            return route, body
+        created = lab.http.post("/v1/comparisons", json=body, headers=lab.headers["admin"])
+        assert created.status_code == 201, created.text
+        return f"/v1/comparisons/{created.json()['id']}", None
     assert "{" not in route, f"no request prepared for {method} {route}"
     return route, None
 
@@ -245,7 +262,7 @@ def test_matrix_has_a_row_for_every_route(lab: Lab) -> None:
     }
     served = {
         (method, route.path)
-        for router in (public_router, jobs_router, admin_router)
+        for router in (public_router, jobs_router, admin_router, comparisons_router)
         for route in router.routes
         if isinstance(route, APIRoute)
         for method in route.methods

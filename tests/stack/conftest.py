@@ -41,11 +41,25 @@ class Stack:
     def client(self) -> Client:
         return Client(self.url, self.token)
 
-    def start_worker(self, concurrency: int = 1, extra_env: dict[str, str] | None = None) -> None:
+    def start_worker(
+        self,
+        concurrency: int = 1,
+        extra_env: dict[str, str] | None = None,
+        calculators: list[str] | None = None,
+    ) -> None:
         log = (self.log_dir / f"worker-{len(self.processes)}.log").open("wb")
+        selection = [f"--calculators={ref}" for ref in calculators or []]
         self.processes.append(
             subprocess.Popen(
-                [sys.executable, "-m", "atomq.cli", "worker", "--concurrency", str(concurrency)],
+                [
+                    sys.executable,
+                    "-m",
+                    "atomq.cli",
+                    "worker",
+                    "--concurrency",
+                    str(concurrency),
+                    *selection,
+                ],
                 env={**self.env, **(extra_env or {})},
                 stdout=log,
                 stderr=subprocess.STDOUT,
@@ -105,7 +119,8 @@ class Stack:
 
 
 def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int = 1) -> Stack:
-    """API and one worker process (with `workers` prefork children), ready to take jobs."""
+    """API and one worker process (with `workers` prefork children; 0: no worker process
+    yet, the test starts its own), ready to take jobs."""
     import redis
 
     # Messages left in the broker by an earlier test name job ids of another database.
@@ -128,6 +143,7 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
         "ATOMQ_RECONCILE_INTERVAL_S": "0.5",
         "ATOMQ_DISPATCH_GRACE_S": "1",
         "ATOMQ_REDISPATCH_AFTER_S": "60",
+        "ATOMQ_WORKER_HEARTBEAT_S": "0.5",
     }
     log_dir = tmp_path / "logs"
     log_dir.mkdir(exist_ok=True)
@@ -142,7 +158,8 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
             start_new_session=True,
         )
     )
-    stack.start_worker(concurrency=workers)
+    if workers:
+        stack.start_worker(concurrency=workers)
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
         try:

@@ -17,8 +17,10 @@ from tests.stack.conftest import Stack
 pytestmark = pytest.mark.stack
 
 
-def atomq(stack: Stack, *args: str) -> subprocess.CompletedProcess[str]:
-    env = {**stack.env, "ATOMQ_URL": stack.url, "ATOMQ_TOKEN": stack.token}
+def atomq(
+    stack: Stack, *args: str, env: dict[str, str] | None = None
+) -> subprocess.CompletedProcess[str]:
+    env = {**stack.env, "ATOMQ_URL": stack.url, "ATOMQ_TOKEN": stack.token, **(env or {})}
     return subprocess.run(
         [sys.executable, "-m", "atomq.cli", *args],
         env=env,

@@ -33,12 +33,29 @@ class Backend:
     requires: tuple[str, ...] = ()
     # Further distributions whose versions a result's provenance records (torch, ...).
     runtime_packages: tuple[str, ...] = ()
+    # For a record without a weights path: the file inside an installed package that these
+    # parameters load (a shipped checkpoint), so its sha256 can be checked; None: no file.
+    shipped_weights: Callable[[dict[str, Any]], Path | None] | None = None
+
+    def weights_file(self, parameters: dict[str, Any], registered: str | None) -> Path | None:
+        """The weights file a record loads on this machine: its registered path, else the
+        checkpoint shipped in the backend's package, else none."""
+        if registered:
+            return Path(registered)
+        return self.shipped_weights(parameters) if self.shipped_weights else None
 
     def missing(self, parameters: dict[str, Any]) -> list[str]:
         """Modules this backend, with these parameters, needs but this machine lacks.
         A "d3" parameter adds dispersion from the dftd3 package."""
         needed = [*self.requires, *(["dftd3"] if "d3" in parameters else [])]
-        return [module for module in needed if find_spec(module) is None]
+        return [module for module in needed if not _importable(module)]
+
+
+def _importable(module: str) -> bool:
+    try:
+        return find_spec(module) is not None
+    except (ImportError, ValueError):  # a blocked or broken installation
+        return False
 
 
 class BackendUnavailable(RuntimeError):

@@ -260,6 +260,11 @@ def _shipped_sevennet_file(checkpoint: str) -> Path:
     return path
 
 
+def _sevennet_shipped_weights(parameters: dict[str, Any]) -> Path | None:
+    checkpoint = parameters.get("checkpoint")
+    return None if checkpoint is None else _shipped_sevennet_file(str(checkpoint))
+
+
 def _sevennet(parameters: dict[str, Any], weights: Path | None) -> Calculator:
     """SevenNet on CPU from a registered weights file, or a checkpoint shipped in sevenn.
 
@@ -321,12 +326,7 @@ def _chgnet(parameters: dict[str, Any], weights: Path | None) -> Calculator:
                 "chgnet backend needs a weights file or parameters.model, one of "
                 + ", ".join(CHGNET_SHIPPED)
             )
-        package = _package_dir("chgnet")
-        if package is None:
-            raise BackendUnavailable("chgnet is not installed: `pip install chgnet`")
-        weights = package / CHGNET_SHIPPED[model]
-        if not weights.is_file():
-            raise BackendUnavailable(f"chgnet's model {model} is missing at {weights}")
+        weights = _shipped_chgnet_file(model)
     chgnet_model = _require("chgnet.model", "chgnet")
     # chgnet prints a line on every load; the worker's log needs none of them.
     with contextlib.redirect_stdout(io.StringIO()):
@@ -340,6 +340,21 @@ def _chgnet(parameters: dict[str, Any], weights: Path | None) -> Calculator:
     return chgnet
 
 
+def _shipped_chgnet_file(model: str) -> Path:
+    package = _package_dir("chgnet")
+    if package is None:
+        raise BackendUnavailable("chgnet is not installed: `pip install chgnet`")
+    path = package / CHGNET_SHIPPED[model]
+    if not path.is_file():
+        raise BackendUnavailable(f"chgnet's model {model} is missing at {path}")
+    return path
+
+
+def _chgnet_shipped_weights(parameters: dict[str, Any]) -> Path | None:
+    model = parameters.get("model")
+    return _shipped_chgnet_file(model) if model in CHGNET_SHIPPED else None
+
+
 TBLITE_BACKEND = Backend(
     "tblite", "tblite", _tblite, requires=("tblite",), runtime_packages=("tblite",)
 )
@@ -349,6 +364,7 @@ SEVENN_BACKEND = Backend(
     with_d3(_sevennet),
     requires=("sevenn", "torch"),
     runtime_packages=("sevenn", "torch", "e3nn"),
+    shipped_weights=_sevennet_shipped_weights,
 )
 CHGNET_BACKEND = Backend(
     "chgnet",
@@ -356,6 +372,7 @@ CHGNET_BACKEND = Backend(
     with_d3(_chgnet),
     requires=("chgnet", "torch"),
     runtime_packages=("chgnet", "torch", "pymatgen"),
+    shipped_weights=_chgnet_shipped_weights,
 )
 
 BACKENDS = {backend.name: backend for backend in (TBLITE_BACKEND, SEVENN_BACKEND, CHGNET_BACKEND)}
@@ -402,8 +419,11 @@ class ShippedCheckpoint:
             "backend": self.backend,
             "parameters": dict(self.parameters),
             "elements": list(self.elements),
-            "weights_path": str(self.weights_path),
+            # No path: every worker finds the file in its own installation of the package
+            # and checks it against this sha256, so one record serves every machine.
+            "weights_path": None,
             "weights_sha256": self.weights_sha256,
+            "weights_size": self.size_bytes,
             "notes": self.notes,
         }
 
@@ -544,3 +564,25 @@ def shipped_checkpoints() -> list[ShippedCheckpoint]:
     if chgnet is not None:
         found += _chgnet_shipped(chgnet)
     return found
+
+
+def tblite_records() -> list[dict[str, Any]]:
+    """Registry records for GFN1-xTB and GFN2-xTB from the installed tblite, one version
+    per tblite release (`gfn2-xtb@tblite-0.5.0`): the method's parameters live in the
+    package, so a tblite upgrade is a new version. Empty where tblite is not installed."""
+    if _package_dir("tblite") is None:
+        return []
+    version = package_version("tblite")
+    return [
+        {
+            "name": method.lower(),
+            "version": f"tblite-{version}",
+            "backend": TBLITE_BACKEND.name,
+            "parameters": {"method": method},
+            "elements": list(XTB_ELEMENTS),
+            "notes": f"{method} from tblite {version}, for molecules and non-metallic solids; "
+            "far too slow for metal supercells (seconds per 32-atom copper cell, where the "
+            "SCF may also fail to converge).",
+        }
+        for method in XTB_METHODS
+    ]

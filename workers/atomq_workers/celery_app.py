@@ -2,16 +2,18 @@
 
 from __future__ import annotations
 
+import os
 from functools import lru_cache
 
 from celery import Celery
-from celery.signals import worker_process_init
+from celery.signals import worker_process_init, worker_ready, worker_shutdown
 from sqlalchemy import Engine
 
 from atomq_service.db import make_engine
 from atomq_service.messaging import RUN_JOB_TASK, celery_config
 from atomq_service.settings import get_settings
 from atomq_workers import execute
+from atomq_workers.heartbeat import WorkerHeartbeat
 
 settings = get_settings()
 app = Celery("atomq-workers")
@@ -25,8 +27,29 @@ def engine() -> Engine:
 
 @worker_process_init.connect
 def _fresh_engine_per_child(**_kwargs: object) -> None:
-    # Connections must not cross fork(); each prefork child opens its own.
+    # Connections must not cross fork(); each prefork child opens its own. The parent's
+    # pool (its heartbeat's) is forgotten here without closing the parent's connections.
+    if engine.cache_info().currsize:
+        engine().dispose(close=False)
     engine.cache_clear()
+
+
+_heartbeat: WorkerHeartbeat | None = None
+
+
+@worker_ready.connect
+def _announce(sender: object = None, **_kwargs: object) -> None:
+    # In Celery's main process only: prefork children never run the heartbeat.
+    global _heartbeat
+    name = str(getattr(sender, "hostname", "") or f"atomq-{os.getpid()}")
+    _heartbeat = WorkerHeartbeat(engine(), name, settings.worker_heartbeat_s)
+    _heartbeat.start()
+
+
+@worker_shutdown.connect
+def _withdraw(**_kwargs: object) -> None:
+    if _heartbeat is not None:
+        _heartbeat.stop()
 
 
 @app.task(name=RUN_JOB_TASK, acks_late=True, reject_on_worker_lost=True)

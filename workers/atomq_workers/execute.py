@@ -30,6 +30,7 @@ from atomq.results import ArtifactRecord, Provenance, ResultModel
 from atomq.structure import Structure
 from atomq.tasks import NEB, TaskSpec
 from atomq_service.db import transaction
+from atomq_service.jobs import package_rows
 from atomq_service.models import (
     Artifact,
     Calculator,
@@ -321,7 +322,7 @@ def run_job(engine: Engine, job_id: int, settings: Settings) -> Outcome:
     state, reason = JobState.succeeded, None
     loaded = None
     try:
-        loaded = get_calculator(record)
+        loaded = get_calculator(record, settings.model_cache_mb)
         task = _task_adapter.validate_python(job.task)
         atoms = (
             None if isinstance(task, NEB) else Structure.model_validate(job.structure).to_atoms()
@@ -430,4 +431,6 @@ def finish(
                     provenance=provenance.model_dump(mode="json"),
                 )
             )
+            # In the same transaction, so a result is never without its audit rows.
+            session.add_all(package_rows(job_id, provenance.packages))
     return Outcome(state.value)

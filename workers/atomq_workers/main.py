@@ -3,6 +3,7 @@ Celery consuming exactly their queues."""
 
 from __future__ import annotations
 
+import json
 import logging
 import os
 import socket
@@ -14,9 +15,11 @@ from sqlmodel import select
 from atomq_service.db import create_schema, make_engine, transaction
 from atomq_service.messaging import queue_name
 from atomq_service.models import Calculator
-from atomq_service.registry import seed_defaults
+from atomq_service.registry import register, seed_defaults
 from atomq_service.settings import Settings
-from atomq_workers.backends import BackendUnavailable, load_backend
+from atomq_workers.backends_ml import shipped_checkpoints, tblite_records
+from atomq_workers.calculators import why_not_runnable
+from atomq_workers.heartbeat import CALCULATORS_ENV, CONCURRENCY_ENV, UNAVAILABLE_ENV
 
 log = logging.getLogger(__name__)
 
@@ -25,23 +28,41 @@ log = logging.getLogger(__name__)
 SINGLE_THREAD = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 
-def runnable_calculators(engine: Engine) -> tuple[list[str], dict[str, str]]:
-    """Refs of active calculators whose backend imports here, and why the others do not."""
+def register_shipped(engine: Engine) -> list[str]:
+    """Register the checkpoints that ship inside this machine's sevenn / chgnet packages,
+    and tblite's GFN methods, as calculator versions, where no record of that name@version
+    exists yet (records are immutable: an existing one is never changed). Returns the refs
+    added."""
+    added: list[str] = []
+    records = [checkpoint.record() for checkpoint in shipped_checkpoints()] + tblite_records()
+    with transaction(engine) as session:
+        known = {c.ref for c in session.exec(select(Calculator)).all()}
+        for record in records:
+            ref = f"{record['name']}@{record['version']}"
+            if ref not in known:
+                register(session, **record)
+                added.append(ref)
+    return added
+
+
+def runnable_calculators(
+    engine: Engine, selection: list[str] | None = None
+) -> tuple[list[str], dict[str, str]]:
+    """Refs of active calculators this machine can run (backend importable, weights
+    present with the registered sha256), and why it cannot run the others. `selection`
+    ('name' or 'name@version' entries) limits the worker to those versions."""
     with transaction(engine) as session:
         records = session.exec(select(Calculator).where(Calculator.retired == False)).all()  # noqa: E712
     runnable: list[str] = []
     skipped: dict[str, str] = {}
     for record in records:
-        try:
-            backend = load_backend(record.backend)
-        except BackendUnavailable as exc:
-            skipped[record.ref] = str(exc)
+        if selection and record.ref not in selection and record.name not in selection:
             continue
-        missing = backend.missing(record.parameters)
-        if missing:
-            skipped[record.ref] = f"backend {record.backend!r} needs {', '.join(missing)}"
-            continue
-        runnable.append(record.ref)
+        why = why_not_runnable(record)
+        if why is None:
+            runnable.append(record.ref)
+        else:
+            skipped[record.ref] = why
     return runnable, skipped
 
 
@@ -79,7 +100,12 @@ def worker_environment(settings: Settings) -> dict[str, str]:
     return env
 
 
-def run_worker(settings: Settings, concurrency: int, loglevel: str = "INFO") -> None:
+def run_worker(
+    settings: Settings,
+    concurrency: int,
+    loglevel: str = "INFO",
+    selection: list[str] | None = None,
+) -> None:
     """Replace this process with a Celery worker (signals then reach Celery directly)."""
     if not settings.broker_url:
         raise SystemExit(
@@ -90,12 +116,21 @@ def run_worker(settings: Settings, concurrency: int, loglevel: str = "INFO") -> 
     engine = make_engine(settings.resolved_database_url)
     create_schema(engine)
     seed_defaults(engine)
-    refs, skipped = runnable_calculators(engine)
+    for ref in register_shipped(engine):
+        print(f"atomq worker: registered {ref}, shipped with an installed package", file=sys.stderr)
+    refs, skipped = runnable_calculators(engine, selection)
     engine.dispose()
     for ref, why in skipped.items():
         print(f"atomq worker: not serving {ref}: {why}", file=sys.stderr)
     if not refs:
-        raise SystemExit("atomq worker: no registered calculator can run on this machine")
+        wanted = f" among {', '.join(selection)}" if selection else ""
+        raise SystemExit(
+            f"atomq worker: no registered active calculator{wanted} can run on this machine"
+        )
     print(f"atomq worker: serving {', '.join(refs)}", file=sys.stderr)
     command = celery_command(refs, concurrency, loglevel)
-    os.execve(sys.executable, command, worker_environment(settings))
+    env = worker_environment(settings)
+    env[CALCULATORS_ENV] = json.dumps(refs)
+    env[UNAVAILABLE_ENV] = json.dumps(skipped)
+    env[CONCURRENCY_ENV] = str(concurrency)
+    os.execve(sys.executable, command, env)

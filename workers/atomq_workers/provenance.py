@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import platform
 import socket
+import sys
 from functools import lru_cache
 from importlib.metadata import PackageNotFoundError, version
 from typing import TYPE_CHECKING, Any
@@ -13,7 +14,10 @@ if TYPE_CHECKING:
     from atomq_workers.backends import Backend
 
 
+@lru_cache
 def package_version(distribution: str) -> str:
+    # Cached per process: the code a worker runs is what it imported at start, even if a
+    # package is upgraded on disk meanwhile (and reading the metadata took ~2 ms a job).
     try:
         return version(distribution)
     except PackageNotFoundError:
@@ -33,7 +37,18 @@ def cpu_model() -> str:
 
 
 def thread_counts() -> dict[str, int]:
-    """Threads each numerical library will use in this process (BLAS, OpenMP)."""
+    """Threads each numerical library will use in this process (BLAS, OpenMP, torch)."""
+    counts = dict(_native_thread_counts())
+    torch = sys.modules.get("torch")  # only where a backend imported it
+    if torch is not None:
+        counts["torch:intra_op"] = int(torch.get_num_threads())
+    return counts
+
+
+@lru_cache
+def _native_thread_counts() -> dict[str, int]:
+    # Fixed for the life of a worker process (set before it starts); threadpoolctl's scan
+    # of the loaded libraries costs milliseconds, so it runs once.
     counts: dict[str, int] = {}
     try:
         from threadpoolctl import threadpool_info

@@ -27,7 +27,7 @@ from atomq_service.api.deps import (
     UserName,
 )
 from atomq_service.errors import ApiError
-from atomq_service.models import ApiToken, Calculator, User, utcnow
+from atomq_service.models import ApiToken, User, utcnow
 from atomq_service.users import hash_token, new_token
 
 router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES, tags=["admin"])
@@ -101,8 +101,19 @@ def register_calculator(
             f"no backend {body.backend!r} is installed on the service; "
             f"installed: {', '.join(installed)}",
         )
-    calculator = registry.register(session, **body.model_dump())
-    public = _calculator_public(calculator)
+    record = body.model_dump(exclude={"weights_sha256"})
+    if body.weights_path is not None:
+        record["weights_sha256"], record["weights_size"] = registry.weights_identity(
+            body.weights_path, body.weights_sha256
+        )
+    elif body.weights_sha256 is not None:
+        raise ApiError(
+            422,
+            "weights_sha256_without_file",
+            "weights_sha256 was given without weights_path; give the file's path too",
+        )
+    calculator = registry.register(session, **record)
+    public = registry.to_public(session, [calculator])[0]
     session.commit()
     return public
 
@@ -111,14 +122,10 @@ def register_calculator(
 def retire_calculator(
     name: Label, version: Label, _admin: CurrentAdmin, session: SessionDep
 ) -> CalculatorPublic:
-    calculator = session.exec(
-        select(Calculator).where(Calculator.name == name, Calculator.version == version)
-    ).first()
-    if calculator is None:
-        raise ApiError(404, "calculator_not_found", f"no calculator {name}@{version}")
+    calculator = registry.find(session, name, version)
     calculator.retired = True
     session.add(calculator)
-    public = _calculator_public(calculator)
+    public = registry.to_public(session, [calculator])[0]
     session.commit()
     return public
 
@@ -150,7 +157,3 @@ def _token_public(token: ApiToken, user: User) -> TokenPublic:
         expires_at=token.expires_at,
         revoked=token.revoked,
     )
-
-
-def _calculator_public(calculator: Calculator) -> CalculatorPublic:
-    return CalculatorPublic.model_validate({**calculator.model_dump(), "ref": calculator.ref})

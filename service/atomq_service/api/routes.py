@@ -2,16 +2,17 @@
 
 from __future__ import annotations
 
+from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Header, Query, Request
 from fastapi.responses import FileResponse, StreamingResponse
 from sqlmodel import select
 
-from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
+from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState, WorkerPublic
 from atomq.results import ArtifactRecord, Provenance, Result
 from atomq.tasks import TaskKind
-from atomq_service import events, jobs
+from atomq_service import events, jobs, presence, registry
 from atomq_service.api.deps import (
     ERROR_RESPONSES,
     MAX_ID,
@@ -20,6 +21,7 @@ from atomq_service.api.deps import (
     CurrentUser,
     DispatcherDep,
     JobId,
+    Label,
     SessionDep,
     SettingsDep,
 )
@@ -64,6 +66,8 @@ def create_job(
     # fails, or this process dies before it, the reconciler sends it later.
     session.commit()
     assert job.id is not None
+    if job.reused_from is not None:  # answered from an earlier result: nothing to run
+        return public
     if dispatcher.send(job.id, job.calculator_ref):
         mark_dispatched(request.app.state.engine, [job.id])
     return public
@@ -80,9 +84,40 @@ def list_jobs(
     ] = None,
     kind: TaskKind | None = None,
     tag: Annotated[str | None, Query(pattern=NAME_PATTERN)] = None,
+    weights_sha256: Annotated[
+        str | None,
+        Query(
+            pattern=r"^[0-9a-fA-F]{64}$",
+            description="Jobs whose calculator version uses weights with this sha256.",
+        ),
+    ] = None,
+    package: Annotated[
+        str | None,
+        Query(
+            pattern=r"^[A-Za-z0-9]([A-Za-z0-9._-]{0,126}[A-Za-z0-9])?$",
+            description="Jobs whose result was computed with this package (a distribution "
+            "name, e.g. ase or sevenn; any version). Only jobs that succeeded have one.",
+        ),
+    ] = None,
+    package_version: Annotated[
+        str | None,
+        Query(
+            pattern=r"^[A-Za-z0-9_.+!-]{1,64}$",
+            description="With `package`: exactly this version of it, e.g. 3.23.0.",
+        ),
+    ] = None,
+    created_after: Annotated[
+        datetime | None,
+        Query(description="Created at or after this time; ISO 8601 with a timezone."),
+    ] = None,
+    created_before: Annotated[
+        datetime | None,
+        Query(description="Created before this time; ISO 8601 with a timezone."),
+    ] = None,
     offset: Annotated[int, Query(ge=0, le=MAX_ID)] = 0,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
 ) -> JobPage:
+    """Jobs matching every given filter, newest first."""
     return jobs.list_jobs(
         session,
         state=state,
@@ -90,6 +125,11 @@ def list_jobs(
         calculator=calculator,
         kind=kind,
         tag=tag,
+        weights_sha256=weights_sha256,
+        package=package,
+        package_version=package_version,
+        created_after=created_after,
+        created_before=created_before,
         offset=offset,
         limit=limit,
     )
@@ -191,5 +231,22 @@ def follow_job(job_id: JobId, _user: CurrentUser, session: SessionDep, request: 
 
 @router.get("/calculators", tags=["calculators"])
 def list_calculators(_user: CurrentUser, session: SessionDep) -> list[CalculatorPublic]:
+    """Every registered version, with its job count and the live workers that can run it."""
     rows = session.exec(select(Calculator).order_by(Calculator.name, Calculator.id)).all()  # type: ignore[arg-type]
-    return [CalculatorPublic.model_validate({**c.model_dump(), "ref": c.ref}) for c in rows]
+    return registry.to_public(session, rows)
+
+
+@router.get("/calculators/{name}/{version}", tags=["calculators"])
+def get_calculator(
+    name: Label, version: Label, _user: CurrentUser, session: SessionDep
+) -> CalculatorPublic:
+    return registry.to_public(session, [registry.find(session, name, version)])[0]
+
+
+@router.get("/workers", tags=["calculators"])
+def list_workers(_user: CurrentUser, session: SessionDep) -> list[WorkerPublic]:
+    """Live workers and what each can run (a worker unseen for three heartbeats is gone)."""
+    return [
+        WorkerPublic.model_validate(worker, from_attributes=True)
+        for worker in presence.live_workers(session)
+    ]
