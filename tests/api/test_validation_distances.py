@@ -1,0 +1,50 @@
+"""The closest-pair check that guards every submission, against ASE's neighbour list."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from ase.build import bulk, fcc111, molecule
+from ase.neighborlist import neighbor_list
+
+from atomq_service.validation import DIRECT_PAIRS_MAX_ATOMS, _closest_pair, periodic_thickness
+
+
+def ase_closest(atoms, cutoff: float) -> float | None:  # type: ignore[no-untyped-def]
+    """Reference: ASE's neighbour list, minimum over every pair and periodic image."""
+    _, _, distance = neighbor_list("ijd", atoms, cutoff, self_interaction=False)
+    return float(distance.min()) if len(distance) else None
+
+
+@pytest.mark.parametrize("seed", range(60))
+def test_direct_pair_search_equals_ases_neighbour_list(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    atoms = bulk("Cu", "fcc", a=3.61).repeat(tuple(rng.integers(1, 4, size=3)))
+    atoms.rattle(0.5, seed=seed)
+    # Sheared cells too: the search must not assume right angles.
+    strain = np.eye(3) + 0.1 * rng.standard_normal((3, 3))
+    atoms.set_cell(atoms.cell.array @ strain, scale_atoms=True)
+    atoms.positions += rng.uniform(-5, 5, size=3)  # outside the cell: wrapped first
+    # The caller refuses cells thinner than the cutoff before searching: stay below it.
+    thinnest = min(t for _, t in periodic_thickness(atoms.cell.array, (True, True, True)))
+    cutoff = min(2.4, 0.99 * thinnest)
+    assert len(atoms) <= DIRECT_PAIRS_MAX_ATOMS
+    found = _closest_pair(atoms, cutoff)
+    reference = ase_closest(atoms, cutoff)
+    assert (found is None) == (reference is None)
+    if found is not None:
+        assert found[2] == pytest.approx(reference, abs=1e-9)
+
+
+@pytest.mark.parametrize(
+    "atoms",
+    [molecule("CH3CH2OH"), fcc111("Cu", (3, 3, 3), vacuum=6.0)],
+    ids=["molecule (no pbc)", "slab (mixed pbc: neighbour list)"],
+)
+def test_molecules_and_slabs_agree_with_ase(atoms) -> None:  # type: ignore[no-untyped-def]
+    for cutoff in (1.0, 1.2, 2.6):
+        found = _closest_pair(atoms, cutoff)
+        reference = ase_closest(atoms, cutoff)
+        assert (found is None) == (reference is None)
+        if found is not None:
+            assert found[2] == pytest.approx(reference, abs=1e-9)
