@@ -5,7 +5,9 @@ time steps are given in fs. Simulated numbers need validation before any
 engineering or safety decision.
 """
 
-from atomq.client import Client, Job
+from atomq.batches import BatchCreate, BatchPublic
+from atomq.client import Batch, Client, Job
+from atomq.comparisons import ComparisonCreate, ComparisonPublic
 from atomq.errors import (
     AtomqError,
     AuthenticationFailed,
@@ -15,7 +17,7 @@ from atomq.errors import (
     NotFound,
     ServerError,
 )
-from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState
+from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState, WorkerPublic
 from atomq.results import (
     ArtifactRecord,
     MDResult,
@@ -36,9 +38,14 @@ __all__ = [
     "ArtifactRecord",
     "AtomqError",
     "AuthenticationFailed",
+    "Batch",
+    "BatchCreate",
+    "BatchPublic",
     "CalculatorPublic",
     "CellRelax",
     "Client",
+    "ComparisonCreate",
+    "ComparisonPublic",
     "ConfigurationError",
     "InvalidRequest",
     "Job",
@@ -61,5 +68,6 @@ __all__ = [
     "Structure",
     "StructureError",
     "TaskSpec",
+    "WorkerPublic",
     "__version__",
 ]

@@ -8,7 +8,7 @@ import tempfile
 import time
 import uuid
 import warnings
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from datetime import datetime
 from pathlib import Path
 from typing import Any, Literal, TextIO, overload
@@ -21,6 +21,7 @@ from pydantic import TypeAdapter
 
 from atomq import config
 from atomq.admin import CalculatorCreate
+from atomq.batches import BatchCreate, BatchItem, BatchPublic, BatchResults
 from atomq.comparisons import Comparison, ComparisonCreate, ComparisonPublic
 from atomq.errors import (
     AtomqError,
@@ -33,7 +34,7 @@ from atomq.errors import (
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState, WorkerPublic
 from atomq.results import ArtifactRecord, Provenance, Result
 from atomq.structure import Structure
-from atomq.tasks import Task
+from atomq.tasks import MD, Relax, SinglePoint, Task
 
 _result_adapter: TypeAdapter[Result] = TypeAdapter(Result)
 
@@ -129,6 +130,42 @@ class Client:
         )
         info = JobPublic.model_validate_json(response.content)
         return Job(self, info.id, info)
+
+    def submit_batch(
+        self,
+        structures: Sequence[Atoms | Structure],
+        task: SinglePoint | Relax | MD,
+        *,
+        calculator: str,
+        tags: list[str] | None = None,
+        time_limit_s: float | None = None,
+        reuse: bool = True,
+    ) -> Batch:
+        """Queue many structures with one task and calculator in one request (up to
+        20 000); returns at once with a Batch handle. Each structure becomes a job of its
+        own; results come back in the order given."""
+        body = BatchCreate(
+            structures=[
+                s if isinstance(s, Structure) else Structure.from_atoms(s) for s in structures
+            ],
+            task=task,
+            calculator=calculator,
+            tags=tags or [],
+            time_limit_s=time_limit_s,
+            reuse=reuse,
+        )
+        response = self.request(
+            "POST",
+            "/v1/batches",
+            content=body.model_dump_json(),
+            headers={"Content-Type": "application/json", "Idempotency-Key": uuid.uuid4().hex},
+        )
+        info = BatchPublic.model_validate_json(response.content)
+        return Batch(self, info.id, info)
+
+    def batch(self, batch_id: int) -> Batch:
+        """A handle to an existing batch."""
+        return Batch(self, batch_id)
 
     def job(self, job_id: int) -> Job:
         """A handle to an existing job."""
@@ -249,6 +286,104 @@ class Client:
         return CalculatorPublic.model_validate_json(response.content)
 
 
+def result_atoms(result: Result) -> Atoms:
+    """A result's final structure as ase.Atoms with a SinglePointCalculator holding its
+    energy, forces and stress."""
+    atoms = result.structure.to_atoms()
+    atoms.calc = SinglePointCalculator(
+        atoms,
+        energy=result.energy,
+        forces=result.forces,
+        **({"stress": list(result.stress)} if result.stress is not None else {}),
+    )
+    return atoms
+
+
+class Batch:
+    """A handle to a batch: its progress, and all its results at once, in order."""
+
+    def __init__(self, client: Client, batch_id: int, info: BatchPublic | None = None) -> None:
+        self.client = client
+        self.id = batch_id
+        self._info = info
+
+    def __repr__(self) -> str:
+        info = self._info
+        return f"Batch({self.id}, {info.size} jobs)" if info else f"Batch({self.id})"
+
+    def info(self) -> BatchPublic:
+        """The batch now, with its jobs counted by state."""
+        response = self.client.request("GET", f"/v1/batches/{self.id}")
+        self._info = BatchPublic.model_validate_json(response.content)
+        return self._info
+
+    progress = info
+
+    def wait(
+        self, timeout: float | None = None, *, poll_interval: float = 0.5, progress: bool = False
+    ) -> BatchPublic:
+        """Block until every job has finished; TimeoutError after `timeout` seconds."""
+        deadline = None if timeout is None else time.monotonic() + timeout
+        interval = min(poll_interval, 0.02)
+        while True:
+            info = self.info()
+            if progress:
+                done = info.size - info.counts.get("queued", 0) - info.counts.get("running", 0)
+                sys.stderr.write(f"\rbatch {self.id}: {done}/{info.size} finished")
+                sys.stderr.flush()
+            if info.finished:
+                if progress:
+                    sys.stderr.write("\n")
+                return info
+            if deadline is not None and time.monotonic() >= deadline:
+                raise TimeoutError(
+                    f"batch {self.id} not finished after {timeout} s: {info.counts}; call "
+                    "wait() again or raise the timeout"
+                )
+            time.sleep(interval)
+            interval = min(interval * 2, poll_interval)
+
+    def items(self, timeout: float | None = None, page: int = 500) -> list[BatchItem]:
+        """Every job's state, error and result (None unless it succeeded), in order."""
+        self.wait(timeout)
+        items: list[BatchItem] = []
+        while True:
+            response = self.client.request(
+                "GET",
+                f"/v1/batches/{self.id}/results",
+                params={"offset": len(items), "limit": page},
+            )
+            chunk = BatchResults.model_validate_json(response.content)
+            items.extend(chunk.items)
+            if not chunk.items or len(items) >= chunk.total:
+                return items
+
+    def results(self, timeout: float | None = None) -> list[Result]:
+        """The results in submission order; JobFailed names the first job that did not
+        succeed (use items() to see every job's state)."""
+        results = []
+        for item in self.items(timeout):
+            if item.result is None:
+                raise JobFailed(item.job_id, item.state, item.error)
+            results.append(item.result)
+        return results
+
+    def atoms(self, timeout: float | None = None) -> list[Atoms]:
+        """Final structures as ase.Atoms with SinglePointCalculators, in submission order."""
+        return [result_atoms(result) for result in self.results(timeout)]
+
+    def jobs(self) -> list[Job]:
+        """Handles to the batch's jobs, in submission order."""
+        info = self._info or self.info()
+        return [Job(self.client, job_id) for job_id in info.job_ids]
+
+    def cancel(self) -> BatchPublic:
+        """Queued jobs end at once, running ones at their next step."""
+        response = self.client.request("POST", f"/v1/batches/{self.id}/cancel")
+        self._info = BatchPublic.model_validate_json(response.content)
+        return self._info
+
+
 def _split_ref(ref: str) -> tuple[str, str]:
     name, _, version = ref.partition("@")
     if not name or not version:
@@ -323,15 +458,7 @@ class Job:
 
     def atoms(self, timeout: float | None = None) -> Atoms:
         """The final structure as ase.Atoms with a SinglePointCalculator holding the results."""
-        result = self.result(timeout)
-        atoms = result.structure.to_atoms()
-        atoms.calc = SinglePointCalculator(
-            atoms,
-            energy=result.energy,
-            forces=result.forces,
-            **({"stress": list(result.stress)} if result.stress is not None else {}),
-        )
-        return atoms
+        return result_atoms(self.result(timeout))
 
     def provenance(self, timeout: float | None = None) -> Provenance:
         """Who, with what code and which calculator version, produced the result."""

@@ -24,6 +24,20 @@ class JobState(StrEnum):
         return self in (JobState.succeeded, JobState.failed, JobState.cancelled)
 
 
+CalculatorRef = Annotated[
+    str,
+    Field(
+        pattern=r"^[A-Za-z0-9_.-]{1,64}(@[A-Za-z0-9_.-]{1,64})?$",
+        description="A registered calculator: 'name' pins the newest version, "
+        "'name@version' an exact one.",
+    ),
+]
+Tags = Annotated[
+    list[Annotated[str, Field(pattern=r"^[A-Za-z0-9_.@+-]{1,64}$")]],
+    Field(max_length=32, description="Labels of letters, digits and _ . @ + - (1-64 characters)."),
+]
+
+
 class JobCreate(BaseModel):
     """What a user submits. `structure` is required except for NEB, whose endpoints are
     part of the task."""
@@ -31,16 +45,8 @@ class JobCreate(BaseModel):
     model_config = ConfigDict(extra="forbid")
     structure: Structure | None = None
     task: TaskSpec
-    calculator: str = Field(
-        pattern=r"^[A-Za-z0-9_.-]{1,64}(@[A-Za-z0-9_.-]{1,64})?$",
-        description="A registered calculator: 'name' pins the newest version, "
-        "'name@version' an exact one.",
-    )
-    tags: list[Annotated[str, Field(pattern=r"^[A-Za-z0-9_.@+-]{1,64}$")]] = Field(
-        default_factory=list,
-        max_length=32,
-        description="Labels of letters, digits and _ . @ + - (1-64 characters).",
-    )
+    calculator: CalculatorRef
+    tags: Tags = Field(default_factory=list)
     time_limit_s: float | None = Field(
         default=None, gt=0, description="Wall-time limit; at most the service's own limit."
     )

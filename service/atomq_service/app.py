@@ -12,6 +12,7 @@ from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from atomq_service.api.admin import router as admin_router
+from atomq_service.api.batches import router as batches_router
 from atomq_service.api.comparisons import router as comparisons_router
 from atomq_service.api.limits import BodySizeLimit, RateLimit
 from atomq_service.api.routes import public_router, router
@@ -60,6 +61,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(public_router)
     app.include_router(router)
     app.include_router(admin_router)
+    app.include_router(batches_router)
     app.include_router(comparisons_router)
     app.add_middleware(RateLimit, per_minute=settings.requests_per_minute)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)

@@ -10,6 +10,7 @@ from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 
+from pydantic import BaseModel
 from sqlalchemy import func
 from sqlmodel import Session, col, select
 
@@ -35,7 +36,7 @@ from atomq_service.settings import Settings
 from atomq_service.validation import check_job
 
 
-def request_fingerprint(request: JobCreate) -> str:
+def request_fingerprint(request: BaseModel) -> str:
     return hashlib.sha256(request.model_dump_json().encode()).hexdigest()
 
 
@@ -57,7 +58,8 @@ def find_by_idempotency_key(
     return earlier
 
 
-def check_queue_limit(session: Session, owner: User, settings: Settings) -> None:
+def check_queue_limit(session: Session, owner: User, settings: Settings, adding: int = 1) -> None:
+    """Refuse work that would take the owner past the queued-or-running limit."""
     """Refuse new queued work past the per-user limit (a reused result queues nothing)."""
     active = session.exec(
         select(func.count())
@@ -67,11 +69,12 @@ def check_queue_limit(session: Session, owner: User, settings: Settings) -> None
             col(Job.state).in_([JobState.queued.value, JobState.running.value]),
         )
     ).one()
-    if active >= settings.max_queued_per_user:
+    if active + adding > settings.max_queued_per_user:
+        asking = f" and ask for {adding} more" if adding > 1 else ""
         raise ApiError(
             429,
             "too_many_queued",
-            f"you have {active} jobs queued or running; this service allows "
+            f"you have {active} jobs queued or running{asking}; this service allows "
             f"{settings.max_queued_per_user} per user (ATOMQ_MAX_QUEUED_PER_USER); "
             "submit more when some have finished",
         )

@@ -1,8 +1,8 @@
 """The message contract between service and workers, defined once for both.
 
-A message carries only a job id (JSON, never pickle); the job itself lives in
-the database. Each registered calculator version has its own queue, so a worker
-consumes only the calculators it can run.
+A message carries only job ids (JSON, never pickle): one, or a few from a batch; the
+jobs themselves live in the database. Each registered calculator version has its own
+queue, so a worker consumes only the calculators it can run.
 """
 
 from __future__ import annotations
@@ -13,6 +13,7 @@ from typing import Any
 from celery import Celery
 
 RUN_JOB_TASK = "atomq.run_job"
+RUN_JOBS_TASK = "atomq.run_jobs"  # several job ids in one message (batches)
 
 log = logging.getLogger(__name__)
 
@@ -81,6 +82,26 @@ class Dispatcher:
             log.warning("could not dispatch job %s: %s", job_id, exc)
             return False
         return True
+
+    def send_many(self, job_ids: list[int], calculator_ref: str, per_message: int) -> list[int]:
+        """Publish jobs `per_message` at a time; returns the ids whose message the broker
+        took (the others stay queued in the database for the reconciler)."""
+        sent: list[int] = []
+        queue = queue_name(calculator_ref)
+        try:
+            with self.celery.producer_or_acquire() as producer:  # one connection for all
+                for start in range(0, len(job_ids), per_message):
+                    chunk = job_ids[start : start + per_message]
+                    task, args = (
+                        (RUN_JOB_TASK, chunk) if len(chunk) == 1 else (RUN_JOBS_TASK, [chunk])
+                    )
+                    self.celery.send_task(
+                        task, args=args, queue=queue, retry=False, producer=producer
+                    )
+                    sent.extend(chunk)
+        except Exception as exc:  # the broker may be down; the jobs are safe in the database
+            log.warning("could not dispatch %d job(s): %s", len(job_ids) - len(sent), exc)
+        return sent
 
     def close(self) -> None:
         self.celery.close()

@@ -74,6 +74,23 @@ class Calculator(SQLModel, table=True):
         return f"{self.name}@{self.version}"
 
 
+class Batch(SQLModel, table=True):
+    """Structures submitted together with one task and calculator; each is a Job."""
+
+    # A client's retry of the same request (same owner, same key) finds this row.
+    __table_args__ = (UniqueConstraint("owner_id", "idempotency_key"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    owner_id: int = Field(foreign_key="user.id", index=True)
+    calculator_id: int = Field(foreign_key="calculator.id")
+    calculator_ref: str
+    kind: str
+    size: int
+    idempotency_key: str | None = None
+    request_sha256: str | None = None
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime, index=True)
+
+
 class Job(SQLModel, table=True):
     # A client's retry of the same submission (same owner, same key) finds this row.
     __table_args__ = (UniqueConstraint("owner_id", "idempotency_key"),)
@@ -103,6 +120,9 @@ class Job(SQLModel, table=True):
     dispatched_at: datetime | None = Field(default=None, sa_type=UTCDateTime, index=True)
     # Set when the result was taken from an earlier job with the same input hash.
     reused_from: int | None = Field(default=None, foreign_key="job.id", index=True)
+    # Jobs submitted together: the batch and the structure's place in its list.
+    batch_id: int | None = Field(default=None, foreign_key="batch.id", index=True)
+    batch_index: int | None = None
     converged: bool | None = None  # relax and NEB: False is shown prominently everywhere
     progress: dict[str, Any] | None = Field(default=None, sa_column=Column(JSON))
     error: str | None = None

@@ -33,6 +33,7 @@ from sqlalchemy import Engine, inspect, text
 from sqlmodel import Session, col, select
 
 from atomq_service.api.admin import router as admin_router
+from atomq_service.api.batches import router as batches_router
 from atomq_service.api.comparisons import router as comparisons_router
 from atomq_service.api.routes import public_router
 from atomq_service.api.routes import router as jobs_router
@@ -43,7 +44,7 @@ from atomq_service.registry import register
 from atomq_service.settings import Settings
 from atomq_service.users import hash_token, issue_token
 from atomq_workers.execute import run_job
-from tests.api.bodies import SHORT_MD, SINGLE_POINT
+from tests.api.bodies import CU_DIMER, SHORT_MD, SINGLE_POINT
 from tests.conftest import App
 
 
@@ -166,6 +167,10 @@ MATRIX: dict[tuple[str, str], tuple[str, ...]] = {
     ("POST", "/v1/users/{name}/tokens"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "201"),
     ("GET", "/v1/users/{name}/tokens"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
     ("POST", "/v1/tokens/{token_id}/revoke"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
+    ("POST", "/v1/batches"): (*DENIED, "201", "201", "201"),
+    ("GET", "/v1/batches/{batch_id}"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/batches/{batch_id}/results"): (*DENIED, "200", "200", "200"),
+    ("POST", "/v1/batches/{batch_id}/cancel"): (*DENIED, "200", "403 not_your_batch", "200"),
     ("POST", "/v1/comparisons"): (*DENIED, "201", "201", "201"),
     ("GET", "/v1/comparisons/{comparison_id}"): (*DENIED, "200", "200", "200"),
 }
@@ -209,6 +214,16 @@ def prepare(lab: Lab, method: str, route: str) -> tuple[str, dict[str, Any] | No
             newest = session.exec(select(ApiToken).order_by(col(ApiToken.id).desc())).first()
             assert newest is not None
         return f"/v1/tokens/{newest.id}/revoke", None
+    if route.startswith("/v1/batches"):
+        body = {"structures": [CU_DIMER], "task": {"kind": "single_point"}, "calculator": "emt"}
+        if method == "POST" and route == "/v1/batches":
+            return route, {**body, "reuse": False}
+        # A batch of the owner's own, fresh for each cell (a cancelled one stays cancelled).
+        created = lab.http.post(
+            "/v1/batches", json={**body, "reuse": False}, headers=lab.headers["owner"]
+        )
+        assert created.status_code == 201, created.text
+        return route.replace("{batch_id}", str(created.json()["id"])), None
     if route.startswith("/v1/comparisons"):
         # The finished job rerun under a calculator version of the cell's own.
         with transaction(lab.engine) as session:
@@ -262,7 +277,7 @@ def test_matrix_has_a_row_for_every_route(lab: Lab) -> None:
     }
     served = {
         (method, route.path)
-        for router in (public_router, jobs_router, admin_router, comparisons_router)
+        for router in (public_router, jobs_router, admin_router, batches_router, comparisons_router)
         for route in router.routes
         if isinstance(route, APIRoute)
         for method in route.methods

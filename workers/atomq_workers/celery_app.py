@@ -10,7 +10,7 @@ from celery.signals import worker_process_init, worker_ready, worker_shutdown
 from sqlalchemy import Engine
 
 from atomq_service.db import make_engine
-from atomq_service.messaging import RUN_JOB_TASK, celery_config
+from atomq_service.messaging import RUN_JOB_TASK, RUN_JOBS_TASK, celery_config
 from atomq_service.settings import get_settings
 from atomq_workers import execute
 from atomq_workers.heartbeat import WorkerHeartbeat
@@ -57,3 +57,10 @@ def run_job(job_id: int) -> str:
     # A delivery for a job whose lease is alive elsewhere is dropped; if that attempt's
     # worker is dead, the lease expires and the service's reconciler re-sends the job.
     return execute.run_job(engine(), int(job_id), settings).state
+
+
+@app.task(name=RUN_JOBS_TASK, acks_late=True, reject_on_worker_lost=True)
+def run_jobs(job_ids: list[int]) -> list[str]:
+    # A batch's jobs, one after the other; each is claimed on its own, so a redelivery
+    # after a crash skips the ones already done (their claim is refused).
+    return [execute.run_job(engine(), int(job_id), settings).state for job_id in job_ids]

@@ -1,0 +1,92 @@
+"""Routes for batches: submit many structures at once, follow them, fetch results in bulk."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Header, Path, Query, Request
+
+from atomq.batches import BatchCreate, BatchPublic, BatchResults
+from atomq_service import batches
+from atomq_service.api.deps import (
+    ERROR_RESPONSES,
+    MAX_ID,
+    CurrentUser,
+    DispatcherDep,
+    SessionDep,
+    SettingsDep,
+)
+from atomq_service.errors import ApiError
+from atomq_service.reconciler import mark_dispatched
+
+router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES, tags=["batches"])
+
+BatchId = Annotated[int, Path(ge=1, le=MAX_ID, description="A batch's id.")]
+
+
+@router.post("/batches", status_code=201)
+def create_batch(
+    body: BatchCreate,
+    user: CurrentUser,
+    session: SessionDep,
+    settings: SettingsDep,
+    dispatcher: DispatcherDep,
+    request: Request,
+    idempotency_key: Annotated[
+        str | None,
+        Header(
+            pattern=r"^[\x21-\x7e]{1,128}$",  # visible ASCII
+            description="Retries with the same key return the same batch.",
+        ),
+    ] = None,
+) -> BatchPublic:
+    """Every structure becomes a job with the same task and calculator version; all are
+    recorded, or (when any structure is refused, named by its index) none."""
+    if idempotency_key is not None:
+        earlier = batches.find_by_idempotency_key(session, user, idempotency_key, body)
+        if earlier is not None:
+            return batches.to_public(session, earlier)
+    batch = batches.create_batch(session, user, body, settings, idempotency_key)
+    public = batches.to_public(session, batch)
+    queued = batches.queued_job_ids(session, batch)
+    per_message = batches.message_size(session, batch.calculator_ref, len(queued))
+    # Commit first, then wake workers; a message lost here is re-sent by the reconciler.
+    session.commit()
+    sent = dispatcher.send_many(queued, batch.calculator_ref, per_message)
+    if sent:
+        mark_dispatched(request.app.state.engine, sent)
+    return public
+
+
+@router.get("/batches/{batch_id}")
+def get_batch(batch_id: BatchId, _user: CurrentUser, session: SessionDep) -> BatchPublic:
+    """The batch with its jobs counted by state."""
+    return batches.to_public(session, batches.get_batch(session, batch_id))
+
+
+@router.get("/batches/{batch_id}/results")
+def get_batch_results(
+    batch_id: BatchId,
+    _user: CurrentUser,
+    session: SessionDep,
+    offset: Annotated[int, Query(ge=0, le=MAX_ID)] = 0,
+    limit: Annotated[int, Query(ge=1, le=1000)] = 500,
+) -> BatchResults:
+    """Results in submission order; a job not succeeded has its state and error only."""
+    return batches.results_page(session, batches.get_batch(session, batch_id), offset, limit)
+
+
+@router.post("/batches/{batch_id}/cancel")
+def cancel_batch(batch_id: BatchId, user: CurrentUser, session: SessionDep) -> BatchPublic:
+    """Members cancel their own batches; admins cancel any."""
+    batch = batches.get_batch(session, batch_id)
+    if batch.owner_id != user.id and user.role != "admin":
+        raise ApiError(
+            403,
+            "not_your_batch",
+            f"batch {batch_id} belongs to another member; only its owner or an admin can cancel it",
+        )
+    batches.cancel_batch(session, batch)
+    public = batches.to_public(session, batch)
+    session.commit()
+    return public

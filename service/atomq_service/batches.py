@@ -1,0 +1,276 @@
+"""Batches: many structures with one task and one calculator version, recorded in one
+transaction as ordinary jobs plus a batch record.
+
+The per-job path (jobs.create_job) costs a few queries per job; here the calculator is
+resolved once, earlier results are looked up for all structures in a few queries, and
+the jobs are inserted together, so a 10 000-structure batch is accepted in seconds.
+"""
+
+from __future__ import annotations
+
+import math
+import secrets
+from collections import Counter
+from collections.abc import Sequence
+
+from sqlalchemy import func
+from sqlmodel import Session, col, select
+
+from atomq.batches import BatchCreate, BatchItem, BatchPublic, BatchResults
+from atomq.hashing import input_hash
+from atomq.jobs import JobState
+from atomq.tasks import MD, Task
+from atomq_service import registry
+from atomq_service.errors import ApiError
+from atomq_service.jobs import check_queue_limit, copy_result, request_fingerprint
+from atomq_service.models import Batch, Job, JobResult, JobTag, User, utcnow
+from atomq_service.presence import live_workers
+from atomq_service.settings import Settings
+from atomq_service.validation import check_job
+
+# Earlier results are looked up this many input hashes per query (well below the
+# bound-parameter limits of SQLite and PostgreSQL).
+HASHES_PER_QUERY = 500
+
+
+def find_by_idempotency_key(
+    session: Session, owner: User, key: str, body: BatchCreate
+) -> Batch | None:
+    """The batch an earlier try of this same submission created, if any; a key reused for
+    a different submission is refused."""
+    earlier = session.exec(
+        select(Batch).where(Batch.owner_id == owner.id, Batch.idempotency_key == key)
+    ).first()
+    if earlier is not None and earlier.request_sha256 != request_fingerprint(body):
+        raise ApiError(
+            422,
+            "idempotency_key_reused",
+            f"Idempotency-Key {key!r} was already used for a different batch ({earlier.id}); "
+            "use a new key for new work",
+        )
+    return earlier
+
+
+def create_batch(
+    session: Session,
+    owner: User,
+    body: BatchCreate,
+    settings: Settings,
+    idempotency_key: str | None = None,
+) -> Batch:
+    """Validate every structure, then record the batch and its jobs. Raises ApiError (the
+    structure's index in the message) before writing anything."""
+    calculator = registry.resolve(session, body.calculator)
+    time_limit_s = body.time_limit_s or settings.max_wall_time_s
+    if time_limit_s > settings.max_wall_time_s:
+        raise ApiError(
+            422,
+            "time_limit_too_long",
+            f"time_limit_s {time_limit_s:g} exceeds this service's limit of "
+            f"{settings.max_wall_time_s:g} s (ATOMQ_MAX_WALL_TIME_S)",
+        )
+    tasks: list[Task] = []
+    for index, structure in enumerate(body.structures):
+        task: Task = body.task
+        if isinstance(task, MD) and task.seed is None:
+            # Each structure its own recorded seed, so every run can be repeated exactly.
+            task = task.model_copy(update={"seed": secrets.randbits(63)})
+        try:
+            check_job([structure], task, calculator, settings)
+        except ApiError as error:
+            raise ApiError(
+                error.status_code, error.code, f"structure {index}: {error.message}"
+            ) from None
+        tasks.append(task)
+    assert owner.id is not None and calculator.id is not None
+    hashes = [
+        input_hash(structure, task, calculator.ref, task.seed if isinstance(task, MD) else None)
+        for structure, task in zip(body.structures, tasks, strict=True)
+    ]
+    earlier = reusable_results(session, hashes) if body.reuse else {}
+    to_queue = sum(1 for hashed in hashes if hashed not in earlier)
+    if to_queue:
+        check_queue_limit(session, owner, settings, adding=to_queue)
+
+    batch = Batch(
+        owner_id=owner.id,
+        calculator_id=calculator.id,
+        calculator_ref=calculator.ref,
+        kind=body.task.kind,
+        size=len(body.structures),
+        idempotency_key=idempotency_key,
+        request_sha256=request_fingerprint(body),
+    )
+    session.add(batch)
+    session.flush()
+    now = utcnow()
+    jobs: list[Job] = []
+    for index, (structure, task, hashed) in enumerate(
+        zip(body.structures, tasks, hashes, strict=True)
+    ):
+        job = Job(
+            owner_id=owner.id,
+            kind=task.kind,
+            calculator_id=calculator.id,
+            calculator_ref=calculator.ref,
+            task=task.model_dump(mode="json"),
+            structure=structure.model_dump(mode="json"),
+            natoms=structure.natoms,
+            formula=structure.chemical_formula(),
+            input_hash=hashed,
+            seed=task.seed if isinstance(task, MD) else None,
+            time_limit_s=time_limit_s,
+            batch_id=batch.id,
+            batch_index=index,
+            created_at=now,
+        )
+        original = earlier.get(hashed)
+        if original is not None:
+            job.state = JobState.succeeded.value
+            job.reused_from = original[0].id
+            job.converged = original[0].converged
+            job.started_at = job.finished_at = now
+        jobs.append(job)
+    session.add_all(jobs)
+    session.flush()  # one multi-row INSERT per few hundred jobs; ids come back in order
+    tags = sorted(set(body.tags))
+    session.add_all(
+        JobTag(job_id=job.id, tag=tag) for job in jobs if job.id is not None for tag in tags
+    )
+    for job in jobs:
+        if job.reused_from is not None:
+            assert job.id is not None
+            copy_result(session, job.id, *earlier[job.input_hash])
+    return batch
+
+
+def reusable_results(session: Session, hashes: Sequence[str]) -> dict[str, tuple[Job, JobResult]]:
+    """For each input hash with a job that succeeded (and computed it itself): the oldest
+    such job and its result. A few queries for any number of hashes."""
+    found: dict[str, tuple[Job, JobResult]] = {}
+    distinct = sorted(set(hashes))
+    for start in range(0, len(distinct), HASHES_PER_QUERY):
+        rows = session.exec(
+            select(Job, JobResult)
+            .join(JobResult, col(JobResult.job_id) == col(Job.id))
+            .where(
+                col(Job.input_hash).in_(distinct[start : start + HASHES_PER_QUERY]),
+                Job.state == JobState.succeeded.value,
+                col(Job.reused_from).is_(None),
+            )
+            .order_by(col(Job.id))
+        ).all()
+        for job, stored in rows:
+            found.setdefault(job.input_hash, (job, stored))
+    return found
+
+
+def queued_job_ids(session: Session, batch: Batch) -> list[int]:
+    return [
+        job_id
+        for job_id in session.exec(
+            select(Job.id).where(Job.batch_id == batch.id, Job.state == JobState.queued.value)
+        ).all()
+        if job_id is not None
+    ]
+
+
+def message_size(session: Session, calculator_ref: str, jobs: int) -> int:
+    """Jobs per message. One message per job costs the broker round trip and a worker
+    wake-up each time; one message for all would leave all but one worker idle. About
+    four messages per worker process that serves the calculator, at most 32 jobs each,
+    keeps every process busy and the per-job cost of messaging small."""
+    processes = sum(w.concurrency for w in live_workers(session) if calculator_ref in w.calculators)
+    return max(1, min(32, math.ceil(jobs / (4 * max(processes, 1)))))
+
+
+def get_batch(session: Session, batch_id: int) -> Batch:
+    batch = session.get(Batch, batch_id)
+    if batch is None:
+        raise ApiError(404, "batch_not_found", f"no batch with id {batch_id}")
+    return batch
+
+
+def to_public(session: Session, batch: Batch) -> BatchPublic:
+    owner = session.get(User, batch.owner_id)
+    assert owner is not None
+    counts = Counter(
+        dict(
+            session.exec(
+                select(Job.state, func.count())
+                .where(Job.batch_id == batch.id)
+                .group_by(col(Job.state))
+            ).all()
+        )
+    )
+    job_ids = session.exec(
+        select(Job.id).where(Job.batch_id == batch.id).order_by(col(Job.batch_index))
+    ).all()
+    unfinished = counts[JobState.queued.value] + counts[JobState.running.value]
+    return BatchPublic(
+        id=batch.id or 0,
+        owner=owner.name,
+        calculator=batch.calculator_ref,
+        kind=batch.kind,
+        size=batch.size,
+        created_at=batch.created_at,
+        counts=dict(counts),
+        finished=unfinished == 0,
+        job_ids=[job_id for job_id in job_ids if job_id is not None],
+    )
+
+
+def results_page(session: Session, batch: Batch, offset: int, limit: int) -> BatchResults:
+    """Results in submission order, two queries per page."""
+    rows = session.exec(
+        select(Job.id, Job.batch_index, Job.state, Job.error)
+        .where(Job.batch_id == batch.id)
+        .order_by(col(Job.batch_index))
+        .offset(offset)
+        .limit(limit)
+    ).all()
+    ids = [job_id for job_id, *_ in rows]
+    results = dict(
+        session.exec(
+            select(JobResult.job_id, JobResult.result).where(col(JobResult.job_id).in_(ids))
+        ).all()
+    )
+    return BatchResults(
+        batch_id=batch.id or 0,
+        offset=offset,
+        limit=limit,
+        total=batch.size,
+        items=[
+            BatchItem.model_validate(
+                {
+                    "job_id": job_id,
+                    "index": index,
+                    "state": state,
+                    "error": error,
+                    "result": results.get(job_id or 0),
+                }
+            )
+            for job_id, index, state, error in rows
+        ],
+    )
+
+
+def cancel_batch(session: Session, batch: Batch) -> int:
+    """Queued jobs end at once, running ones stop at their next step; returns how many
+    jobs were asked to stop."""
+    jobs = session.exec(
+        select(Job).where(
+            Job.batch_id == batch.id,
+            col(Job.state).in_([JobState.queued.value, JobState.running.value]),
+        )
+    ).all()
+    now = utcnow()
+    for job in jobs:
+        if job.state == JobState.queued.value:
+            job.state = JobState.cancelled.value
+            job.finished_at = now
+            job.error = "cancelled before it started (batch cancelled)"
+        else:
+            job.cancel_requested = True
+        session.add(job)
+    return len(jobs)

@@ -1,0 +1,66 @@
+"""A batch through real workers: a few jobs per broker message, every result in order."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from ase.build import bulk
+from ase.calculators.emt import EMT
+from ase.optimize import BFGS
+
+from atomq import Relax, SinglePoint
+from tests.stack.conftest import Stack
+from tests.stack.test_registry_and_workers import eventually
+
+pytestmark = pytest.mark.stack
+
+
+def rattled_cells(count: int) -> list:  # type: ignore[type-arg]
+    cells = []
+    for index in range(count):
+        atoms = bulk("Cu", "fcc", a=3.61, cubic=True).repeat(2)  # 32 atoms
+        atoms.rattle(0.05, seed=index)
+        cells.append(atoms)
+    return cells
+
+
+def test_batch_results_equal_ase_in_submission_order(redis_stack: Stack) -> None:
+    client = redis_stack.client()
+    eventually(client.workers, what="the worker")  # message size follows live workers
+    cells = rattled_cells(40)
+    batch = client.submit_batch(cells, SinglePoint(), calculator="emt", tags=["batch-check"])
+    info = batch.wait(120)
+    assert info.counts == {"succeeded": 40}
+    for atoms, ours in zip(cells, batch.atoms(), strict=True):
+        # Reference: ASE's EMT on the same cell, in this process.
+        atoms.calc = EMT()
+        assert ours.get_potential_energy() == atoms.get_potential_energy()
+        np.testing.assert_array_equal(ours.get_forces(), atoms.get_forces())
+        np.testing.assert_array_equal(ours.positions, atoms.positions)
+    # One worker process with one child: 40 jobs / (4 x 1) = 10 jobs per message.
+    log = (redis_stack.log_dir / "worker-1.log").read_text()
+    assert log.count("atomq.run_jobs") >= 4 and "atomq.run_job[" not in log
+    assert len({redis_stack.worker_of(job.id) for job in batch.jobs()}) == 1
+
+
+def test_relax_batch_and_cancel(redis_stack: Stack) -> None:
+    client = redis_stack.client()
+    strained = []
+    for index, a in enumerate((3.45, 3.52, 3.60)):
+        atoms = bulk("Ni", "fcc", a=a, cubic=True).repeat(2)
+        atoms.rattle(0.08, seed=index)
+        strained.append(atoms)
+    batch = client.submit_batch(strained, Relax(fmax=0.01), calculator="emt")
+    for atoms, ours in zip(strained, batch.atoms(120), strict=True):
+        # Reference: ASE's BFGS with EMT in this process (BLAS single-threaded, as in the
+        # workers), the same optimizer and threshold as Relax's defaults.
+        atoms.calc = EMT()
+        BFGS(atoms, logfile=None).run(fmax=0.01, steps=500)
+        np.testing.assert_array_equal(ours.positions, atoms.positions)
+        assert ours.get_potential_energy() == atoms.get_potential_energy()
+
+    many = client.submit_batch(rattled_cells(30), SinglePoint(), calculator="emt", reuse=False)
+    stopped = many.cancel()
+    assert sum(stopped.counts.values()) == 30
+    final = many.wait(60)
+    assert final.finished and final.counts.get("cancelled", 0) >= 1
