@@ -61,6 +61,7 @@ def run_job(job_id: int) -> str:
 
 @app.task(name=RUN_JOBS_TASK, acks_late=True, reject_on_worker_lost=True)
 def run_jobs(job_ids: list[int]) -> list[str]:
-    # A batch's jobs, one after the other; each is claimed on its own, so a redelivery
-    # after a crash skips the ones already done (their claim is refused).
-    return [execute.run_job(engine(), int(job_id), settings).state for job_id in job_ids]
+    # A batch's jobs: single points claimed and recorded together, the rest one by one.
+    # A redelivery after a crash skips the jobs already done (their claim is refused).
+    outcomes = execute.run_single_points(engine(), [int(job_id) for job_id in job_ids], settings)
+    return [outcome.state for outcome in outcomes]
