@@ -425,6 +425,8 @@ class Job:
         With progress=True a one-line bar (step, energy, fmax) is redrawn on stderr.
         """
         deadline = None if timeout is None else time.monotonic() + timeout
+        if not progress:
+            return self._wait_on_server(timeout, deadline)
         out = stream or sys.stderr
         interval = min(poll_interval, 0.005)  # start fast: small jobs finish in milliseconds
         while True:
@@ -443,6 +445,27 @@ class Job:
                 )
             time.sleep(interval)
             interval = min(interval * 2, poll_interval)
+
+    def _wait_on_server(self, timeout: float | None, deadline: float | None) -> JobPublic:
+        """Wait through the service's /wait route: it answers as soon as the job ends (or
+        after at most 30 s, then we ask again), so no time is lost between polls."""
+        while True:
+            left = 30.0 if deadline is None else max(deadline - time.monotonic(), 0.0)
+            response = self.client.request(
+                "GET",
+                f"/v1/jobs/{self.id}/wait",
+                params={"timeout_s": min(left, 30.0)},
+                timeout=min(left, 30.0) + 30.0,  # the server holds the request that long
+            )
+            info = JobPublic.model_validate_json(response.content)
+            self._info = info
+            if info.state.finished:
+                return info
+            if deadline is not None and time.monotonic() >= deadline:
+                raise TimeoutError(
+                    f"job {self.id} still {info.state.value} after {timeout} s; "
+                    "call wait() again or raise the timeout"
+                )
 
     def result(self, timeout: float | None = None) -> Result:
         """Wait for the job and return its result; JobFailed if it failed or was cancelled."""

@@ -155,6 +155,7 @@ MATRIX: dict[tuple[str, str], tuple[str, ...]] = {
     ("GET", "/v1/jobs/{job_id}/prov-json"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/prov-json"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/jobs/{job_id}/events"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/jobs/{job_id}/wait"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/artifacts/{artifact_id}"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/calculators"): (*DENIED, "200", "200", "200"),
     ("POST", "/v1/calculators"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "201"),

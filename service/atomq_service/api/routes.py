@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import asyncio
 from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Header, Query, Request
 from fastapi.responses import FileResponse, StreamingResponse
-from sqlmodel import select
+from sqlalchemy import Engine
+from sqlmodel import Session, col, select
 
 from atomq.jobs import CalculatorPublic, JobCreate, JobPage, JobPublic, JobState, WorkerPublic
 from atomq.results import ArtifactRecord, Provenance, Result
@@ -26,7 +28,7 @@ from atomq_service.api.deps import (
     SettingsDep,
 )
 from atomq_service.errors import ApiError
-from atomq_service.models import Calculator
+from atomq_service.models import Calculator, Job
 from atomq_service.prov import prov_document
 from atomq_service.reconciler import mark_dispatched
 
@@ -138,6 +140,49 @@ def list_jobs(
 @router.get("/jobs/{job_id}", tags=["jobs"])
 def get_job(job_id: JobId, _user: CurrentUser, session: SessionDep) -> JobPublic:
     return jobs.to_public(session, [jobs.get_job(session, job_id)])[0]
+
+
+@router.get("/jobs/{job_id}/wait", tags=["jobs"])
+async def wait_for_job(
+    job_id: JobId,
+    _user: CurrentUser,
+    session: SessionDep,
+    request: Request,
+    timeout_s: Annotated[
+        float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
+    ] = 10.0,
+) -> JobPublic:
+    """The job once it has finished, or as it is after `timeout_s`: a client waits with
+    one request instead of polling, and hears of the end within milliseconds."""
+    # The token was checked; end that transaction now (on SQLite it holds the write lock,
+    # which the worker needs to finish the job we are waiting for).
+    session.close()
+    engine = request.app.state.engine
+    loop = asyncio.get_running_loop()
+    deadline = loop.time() + timeout_s
+    pause = 0.002  # short first: small jobs end within milliseconds of their message
+    while True:
+        public = await asyncio.to_thread(_job_if_finished, engine, job_id)
+        if public is not None:
+            return public
+        if loop.time() >= deadline:
+            return await asyncio.to_thread(_job_now, engine, job_id)
+        await asyncio.sleep(pause)
+        pause = min(pause * 1.5, 0.05)
+
+
+def _job_if_finished(engine: Engine, job_id: int) -> JobPublic | None:
+    """The job's record if it has finished; one indexed read while it has not."""
+    with engine.connect() as connection:
+        state = connection.execute(select(Job.state).where(col(Job.id) == job_id)).scalar()
+    if state is None:
+        raise ApiError(404, "job_not_found", f"no job with id {job_id}")
+    return _job_now(engine, job_id) if JobState(state).finished else None
+
+
+def _job_now(engine: Engine, job_id: int) -> JobPublic:
+    with Session(engine, expire_on_commit=False) as session:
+        return jobs.to_public(session, [jobs.get_job(session, job_id)])[0]
 
 
 @router.post("/jobs/{job_id}/cancel", tags=["jobs"])
