@@ -145,6 +145,19 @@ def cmd_submit(args: argparse.Namespace) -> int:
         raise SystemExit(f"atomq submit: {exc}") from exc
     images = ase.io.read(args.file, index=":")
     with _client(args) as client:
+        if args.batch:
+            assert not isinstance(task, NEB)  # submit offers single_point, relax and md
+            batch = client.submit_batch(
+                list(images), task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
+            )
+            print(f"batch {batch.id}")
+            for job_id in batch.info().job_ids:
+                print(job_id)
+            if args.wait:
+                info = batch.wait(progress=True)
+                counts = ", ".join(f"{n} {state}" for state, n in sorted(info.counts.items()))
+                print(f"batch {batch.id} finished: {counts}")
+            return 0
         for atoms in images:
             job = client.submit(
                 atoms, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
@@ -490,6 +503,11 @@ def build_parser() -> argparse.ArgumentParser:
     submit.add_argument("--tag", action="append", default=[])
     submit.add_argument("--wait", action="store_true", help="wait, showing progress")
     submit.add_argument("--fresh", action="store_true", help=FRESH_HELP)
+    submit.add_argument(
+        "--batch",
+        action="store_true",
+        help="send every structure of the file in one request, as one batch",
+    )
 
     neb = client_command("submit-neb", cmd_submit_neb, "a nudged elastic band between two ends")
     neb.add_argument("initial", help="a structure file, or the id of a finished job")

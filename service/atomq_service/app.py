@@ -10,11 +10,12 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.middleware.gzip import GZipMiddleware
 
 from atomq_service.api.admin import router as admin_router
 from atomq_service.api.batches import router as batches_router
 from atomq_service.api.comparisons import router as comparisons_router
-from atomq_service.api.limits import BodySizeLimit, RateLimit
+from atomq_service.api.limits import BodySizeLimit, GzipRequest, RateLimit
 from atomq_service.api.routes import public_router, router
 from atomq_service.db import create_schema, make_engine
 from atomq_service.errors import ApiError
@@ -22,6 +23,10 @@ from atomq_service.messaging import Dispatcher
 from atomq_service.reconciler import run_forever
 from atomq_service.registry import seed_defaults
 from atomq_service.settings import Settings, get_settings
+
+# Responses from this size on are gzip-compressed for clients that accept it (a structure
+# of about 1000 atoms and up, trajectories); level 1: most of the gain, little CPU.
+GZIP_MINIMUM_BYTES = 64 * 1024
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -63,6 +68,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(admin_router)
     app.include_router(batches_router)
     app.include_router(comparisons_router)
+    # Outermost last: the size of what arrives, then the rate, then inflating a gzip
+    # body (under the same limit), then compressing large responses for the way back.
+    app.add_middleware(GZipMiddleware, minimum_size=GZIP_MINIMUM_BYTES, compresslevel=1)
+    app.add_middleware(GzipRequest, max_bytes=settings.max_body_bytes)
     app.add_middleware(RateLimit, per_minute=settings.requests_per_minute)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
 

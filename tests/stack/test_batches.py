@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
+import ase.io
 import numpy as np
 import pytest
 from ase.build import bulk
@@ -10,6 +13,7 @@ from ase.optimize import BFGS
 
 from atomq import Relax, SinglePoint
 from tests.stack.conftest import Stack
+from tests.stack.test_cli import atomq
 from tests.stack.test_registry_and_workers import eventually
 
 pytestmark = pytest.mark.stack
@@ -64,3 +68,21 @@ def test_relax_batch_and_cancel(redis_stack: Stack) -> None:
     assert sum(stopped.counts.values()) == 30
     final = many.wait(60)
     assert final.finished and final.counts.get("cancelled", 0) >= 1
+
+
+def test_cli_submits_a_file_as_one_batch(redis_stack: Stack, tmp_path: Path) -> None:
+    cells = rattled_cells(6)
+    path = tmp_path / "cells.extxyz"
+    ase.io.write(path, cells)
+    submitted = atomq(redis_stack, "submit", str(path), "--calculator", "emt", "--batch", "--wait")
+    assert submitted.returncode == 0, submitted.stderr
+    lines = submitted.stdout.splitlines()
+    assert lines[0].startswith("batch ") and lines[-1].endswith("finished: 6 succeeded")
+    job_ids = [int(line) for line in lines[1:-1]]
+    assert len(job_ids) == 6
+    client = redis_stack.client()
+    # Reference: ASE's EMT on the cells as the file holds them (extended XYZ rounds
+    # positions to 8 decimals), in this process; order kept.
+    for job_id, atoms in zip(job_ids, ase.io.read(path, index=":"), strict=True):
+        atoms.calc = EMT()
+        assert client.job(job_id).result().energy == atoms.get_potential_energy()

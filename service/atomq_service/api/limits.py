@@ -1,10 +1,12 @@
-"""Request limits applied before any route runs: body size and requests per minute."""
+"""Request limits applied before any route runs: body size (plain and gzip-inflated) and
+requests per minute."""
 
 from __future__ import annotations
 
 import hashlib
 import json
 import time
+import zlib
 from collections import defaultdict, deque
 
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
@@ -112,3 +114,72 @@ class RateLimit:
             return
         window.append(now)
         await self.app(scope, receive, send)
+
+
+class GzipRequest:
+    """Accepts request bodies sent with `Content-Encoding: gzip` (the client compresses
+    large structures), inflating them under the same size limit as plain bodies: a small
+    compressed body cannot expand past ATOMQ_MAX_BODY_BYTES."""
+
+    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        headers = dict(scope.get("headers", [])) if scope["type"] == "http" else {}
+        encoding = headers.get(b"content-encoding", b"").strip().lower()
+        if not encoding or encoding == b"identity":
+            await self.app(scope, receive, send)
+            return
+        if encoding != b"gzip":
+            await _refuse(
+                send,
+                415,
+                "unsupported_encoding",
+                f"Content-Encoding {encoding.decode(errors='replace')!r} is not accepted; "
+                "send the body plain or gzip-compressed",
+            )
+            return
+        compressed = bytearray()
+        while True:
+            event = await receive()
+            if event["type"] != "http.request":
+                break
+            compressed += event.get("body", b"")
+            if not event.get("more_body", False):
+                break
+        inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)  # gzip framing
+        try:
+            body = inflater.decompress(bytes(compressed), self.max_bytes + 1)
+            complete = inflater.eof
+        except zlib.error as exc:
+            await _refuse(send, 400, "bad_gzip", f"the body is not valid gzip ({exc})")
+            return
+        if len(body) > self.max_bytes:
+            await _refuse(
+                send,
+                413,
+                "body_too_large",
+                f"request body over {self.max_bytes} bytes once inflated "
+                "(ATOMQ_MAX_BODY_BYTES); split the work into several requests",
+            )
+            return
+        if not complete:
+            await _refuse(send, 400, "bad_gzip", "the gzip body ends before its last block")
+            return
+        plain_headers = [
+            (name, value)
+            for name, value in scope["headers"]
+            if name not in (b"content-encoding", b"content-length")
+        ]
+        plain_headers.append((b"content-length", str(len(body)).encode()))
+        replayed = False
+
+        async def replay() -> Message:
+            nonlocal replayed
+            if replayed:
+                return await receive()
+            replayed = True
+            return {"type": "http.request", "body": body, "more_body": False}
+
+        await self.app({**scope, "headers": plain_headers}, replay, send)
