@@ -12,6 +12,7 @@ from pathlib import Path
 
 from pydantic import BaseModel
 from sqlalchemy import func
+from sqlalchemy.orm import defer
 from sqlmodel import Session, col, select
 
 from atomq.hashing import input_hash
@@ -234,6 +235,11 @@ def get_job(session: Session, job_id: int) -> Job:
     return job
 
 
+# The Job columns JobPublic shows under the same name (read one by one, so a column the
+# query deferred, such as the structure, is never loaded).
+_PUBLIC_COLUMNS = [name for name in JobPublic.model_fields if name in Job.model_fields]
+
+
 def to_public(session: Session, jobs: Sequence[Job]) -> list[JobPublic]:
     """Convert rows to the wire form with a fixed number of queries, never N+1."""
     if not jobs:
@@ -250,7 +256,7 @@ def to_public(session: Session, jobs: Sequence[Job]) -> list[JobPublic]:
     return [
         JobPublic.model_validate(
             {
-                **job.model_dump(),
+                **{name: getattr(job, name) for name in _PUBLIC_COLUMNS},
                 "owner": owners[job.owner_id],
                 "calculator": job.calculator_ref,
                 "tags": tags[job.id] if job.id is not None else [],
@@ -349,7 +355,10 @@ def list_jobs(
     if before is not None:
         query = query.where(col(Job.created_at) < before)
     total = session.exec(select(func.count()).select_from(query.subquery())).one()
-    rows = session.exec(query.order_by(col(Job.id).desc()).offset(offset).limit(limit)).all()
+    # The page leaves out each job's input structure (JobPublic has none; a page of large
+    # structures would be decoded for nothing).
+    page = query.options(defer(Job.structure))  # type: ignore[arg-type]
+    rows = session.exec(page.order_by(col(Job.id).desc()).offset(offset).limit(limit)).all()
     return JobPage(items=to_public(session, rows), total=total, offset=offset, limit=limit)
 
 
