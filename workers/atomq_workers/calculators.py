@@ -33,7 +33,7 @@ class LoadedCalculator:
     backend: Backend
     calculator: Calculator
     weights: Path | None = None
-    size_bytes: int = 0  # growth of the process's resident memory when it loaded
+    size_bytes: int = 0  # memory it took when it loaded (see CalculatorCache.get)
 
     def fresh(self) -> Calculator:
         """Another instance of the same version (NEB gives each image its own, as ASE
@@ -94,6 +94,17 @@ def resident_bytes() -> int:
         return 0
 
 
+def tensor_bytes(calculator: object) -> int:
+    """Bytes of a torch model's parameters and buffers behind an ASE calculator (its
+    `model`, or a D3 sum's base model); 0 for calculators without one."""
+    model = getattr(getattr(calculator, "base", calculator), "model", None)
+    tensors = [
+        *getattr(model, "parameters", lambda: [])(),
+        *getattr(model, "buffers", lambda: [])(),
+    ]
+    return sum(int(t.numel()) * int(t.element_size()) for t in tensors)
+
+
 class CalculatorCache:
     """Loaded calculator versions, least recently used first, within a memory budget."""
 
@@ -111,7 +122,9 @@ class CalculatorCache:
         weights = verified_weights(record, backend)
         before = resident_bytes()
         calculator = backend.make(dict(record.parameters), weights)
-        size = max(resident_bytes() - before, 0)
+        # The process's growth, or the model's own tensors where that says more (memory
+        # freed by an evicted model is reused without the process growing).
+        size = max(resident_bytes() - before, tensor_bytes(calculator), 0)
         loaded = LoadedCalculator(record, backend, calculator, weights, size)
         self._loaded[record.ref] = loaded
         self.loads += 1
