@@ -7,7 +7,7 @@ import pytest
 from ase.build import bulk, fcc111, molecule
 from ase.neighborlist import neighbor_list
 
-from atomq_service.validation import DIRECT_PAIRS_MAX_ATOMS, _closest_pair, periodic_thickness
+from atomq_service.validation import _closest_pair, periodic_thickness
 
 
 def ase_closest(atoms, cutoff: float) -> float | None:  # type: ignore[no-untyped-def]
@@ -17,7 +17,7 @@ def ase_closest(atoms, cutoff: float) -> float | None:  # type: ignore[no-untype
 
 
 @pytest.mark.parametrize("seed", range(60))
-def test_direct_pair_search_equals_ases_neighbour_list(seed: int) -> None:
+def test_pair_search_in_small_cells_equals_ases_neighbour_list(seed: int) -> None:
     rng = np.random.default_rng(seed)
     atoms = bulk("Cu", "fcc", a=3.61).repeat(tuple(rng.integers(1, 4, size=3)))
     atoms.rattle(0.5, seed=seed)
@@ -28,7 +28,6 @@ def test_direct_pair_search_equals_ases_neighbour_list(seed: int) -> None:
     # The caller refuses cells thinner than the cutoff before searching: stay below it.
     thinnest = min(t for _, t in periodic_thickness(atoms.cell.array, (True, True, True)))
     cutoff = min(2.4, 0.99 * thinnest)
-    assert len(atoms) <= DIRECT_PAIRS_MAX_ATOMS
     found = _closest_pair(atoms, cutoff)
     reference = ase_closest(atoms, cutoff)
     assert (found is None) == (reference is None)
@@ -48,3 +47,25 @@ def test_molecules_and_slabs_agree_with_ase(atoms) -> None:  # type: ignore[no-u
         assert (found is None) == (reference is None)
         if found is not None:
             assert found[2] == pytest.approx(reference, abs=1e-9)
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_pair_search_in_larger_cells_and_clusters_equals_ases_neighbour_list(seed: int) -> None:
+    rng = np.random.default_rng(100 + seed)
+    periodic = seed % 3 != 0
+    atoms = bulk("Cu", "fcc", a=3.61).repeat((6, 6, 6))  # 216 atoms
+    strain = np.eye(3) + 0.1 * rng.standard_normal((3, 3))
+    atoms.set_cell(atoms.cell.array @ strain, scale_atoms=True)
+    atoms.rattle(0.6, seed=seed)
+    atoms.positions += rng.uniform(-8, 8, size=3)
+    atoms.pbc = periodic  # a cluster when not periodic
+    thinnest = min(t for _, t in periodic_thickness(atoms.cell.array, (True, True, True)))
+    for cutoff in (1.0, min(2.2, 0.99 * thinnest)):
+        found = _closest_pair(atoms, cutoff)
+        reference = ase_closest(atoms, cutoff)
+        assert (found is None) == (reference is None)
+        if found is not None:
+            assert found[2] == pytest.approx(reference, abs=1e-9)
+            # The reported pair is a real pair at that distance (minimum image).
+            i, j, distance = found
+            assert atoms.get_distance(i, j, mic=periodic) == pytest.approx(distance, abs=1e-9)
