@@ -12,8 +12,9 @@ import math
 import secrets
 from collections import Counter
 from collections.abc import Sequence
+from typing import Any
 
-from sqlalchemy import func
+from sqlalchemy import func, insert
 from sqlmodel import Session, col, select
 
 from atomq.batches import BatchCreate, BatchItem, BatchPublic, BatchResults
@@ -104,43 +105,53 @@ def create_batch(
     session.add(batch)
     session.flush()
     now = utcnow()
-    jobs: list[Job] = []
+    rows: list[dict[str, Any]] = []
     for index, (structure, task, hashed) in enumerate(
         zip(body.structures, tasks, hashes, strict=True)
     ):
-        job = Job(
-            owner_id=owner.id,
-            kind=task.kind,
-            calculator_id=calculator.id,
-            calculator_ref=calculator.ref,
-            task=task.model_dump(mode="json"),
-            structure=structure.model_dump(mode="json"),
-            natoms=structure.natoms,
-            formula=structure.chemical_formula(),
-            input_hash=hashed,
-            seed=task.seed if isinstance(task, MD) else None,
-            time_limit_s=time_limit_s,
-            batch_id=batch.id,
-            batch_index=index,
-            created_at=now,
-        )
         original = earlier.get(hashed)
-        if original is not None:
-            job.state = JobState.succeeded.value
-            job.reused_from = original[0].id
-            job.converged = original[0].converged
-            job.started_at = job.finished_at = now
-        jobs.append(job)
-    session.add_all(jobs)
-    session.flush()  # one multi-row INSERT per few hundred jobs; ids come back in order
-    tags = sorted(set(body.tags))
-    session.add_all(
-        JobTag(job_id=job.id, tag=tag) for job in jobs if job.id is not None for tag in tags
+        rows.append(
+            {
+                "owner_id": owner.id,
+                "state": (JobState.succeeded if original else JobState.queued).value,
+                "kind": task.kind,
+                "calculator_id": calculator.id,
+                "calculator_ref": calculator.ref,
+                "task": task.model_dump(mode="json"),
+                "structure": structure.model_dump(mode="json"),
+                "natoms": structure.natoms,
+                "formula": structure.chemical_formula(),
+                "input_hash": hashed,
+                "seed": task.seed if isinstance(task, MD) else None,
+                "parents": [],
+                "time_limit_s": time_limit_s,
+                "attempts": 0,
+                "cancel_requested": False,
+                "batch_id": batch.id,
+                "batch_index": index,
+                "reused_from": original[0].id if original else None,
+                "converged": original[0].converged if original else None,
+                "created_at": now,
+                "started_at": now if original else None,
+                "finished_at": now if original else None,
+            }
+        )
+    # Plain multi-row INSERTs: building thousands of ORM objects cost more than the rest
+    # of the batch together. The ids come back in the order of the rows.
+    connection = session.connection()
+    job_ids = list(
+        connection.execute(
+            insert(Job).returning(col(Job.id), sort_by_parameter_order=True), rows
+        ).scalars()
     )
-    for job in jobs:
-        if job.reused_from is not None:
-            assert job.id is not None
-            copy_result(session, job.id, *earlier[job.input_hash])
+    tags = sorted(set(body.tags))
+    if tags:
+        connection.execute(
+            insert(JobTag), [{"job_id": job_id, "tag": tag} for job_id in job_ids for tag in tags]
+        )
+    for job_id, row in zip(job_ids, rows, strict=True):
+        if row["reused_from"] is not None and job_id is not None:
+            copy_result(session, job_id, *earlier[row["input_hash"]])
     return batch
 
 

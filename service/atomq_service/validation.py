@@ -270,29 +270,21 @@ def _closest_pair_tree(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | 
     natoms = len(atoms)
     points, owners = [atoms.positions], [np.arange(natoms)]
     if atoms.pbc.all():
-        positions = atoms.get_positions(wrap=True)
-        fractional = atoms.cell.scaled_positions(positions)
+        cell = atoms.cell.array
+        fractional = np.linalg.solve(cell.T, atoms.positions.T).T % 1.0
+        positions = fractional @ cell  # wrapped into the cell
         # How far, in fractional units, `cutoff` reaches across each axis's lattice planes.
-        reach = np.array(
-            [
-                cutoff / thickness
-                for _, thickness in periodic_thickness(atoms.cell.array, (True, True, True))
-            ]
-        )
-        points = [positions]
-        for shift in itertools.product((-1, 0, 1), repeat=3):
-            if shift == (0, 0, 0):
-                continue
-            # A copy moved by +1 cell is near the far face only if it was near the near one.
-            near = np.ones(natoms, dtype=bool)
-            for axis, step in enumerate(shift):
-                if step == 1:
-                    near &= fractional[:, axis] < reach[axis]
-                elif step == -1:
-                    near &= fractional[:, axis] > 1 - reach[axis]
-            if near.any():
-                points.append(positions[near] + np.array(shift) @ atoms.cell.array)
-                owners.append(np.flatnonzero(near))
+        reach = cutoff / np.array([t for _, t in periodic_thickness(cell, (True, True, True))])
+        low, high = fractional < reach, fractional > 1 - reach  # [atom, axis]
+        # A copy moved by +1 cell along an axis lands near the far face only if the atom
+        # was near the near one (and the other way round); 0 along an axis asks nothing.
+        shifts = np.array([s for s in itertools.product((-1, 0, 1), repeat=3) if any(s)])
+        wanted = np.where(
+            shifts[:, None, :] == 1, low, np.where(shifts[:, None, :] == -1, high, True)
+        ).all(axis=2)  # [shift, atom]
+        which_shift, which_atom = np.nonzero(wanted)
+        points = [positions, positions[which_atom] + shifts[which_shift] @ cell]
+        owners = [np.arange(natoms), which_atom]
     everything, owner = np.vstack(points), np.concatenate(owners)
     pairs = cKDTree(everything).query_pairs(cutoff, output_type="ndarray")
     pairs = pairs[(pairs < natoms).any(axis=1)]  # every close pair has an original atom
@@ -309,6 +301,12 @@ def periodic_thickness(cell: np.ndarray, pbc: tuple[bool, bool, bool]) -> list[t
     periodic vectors: the spacing of the lattice planes that repeat along that axis.
     Non-periodic vectors play no part (they do not repeat the atoms)."""
     periodic = [axis for axis in range(3) if pbc[axis]]
+    if len(periodic) == 3:  # volume over the area spanned by the other two vectors
+        areas = np.linalg.norm(
+            np.cross(np.roll(cell, -1, axis=0), np.roll(cell, -2, axis=0)), axis=1
+        )
+        volume = abs(float(np.linalg.det(cell)))
+        return [(axis, volume / float(areas[axis]) if areas[axis] else 0.0) for axis in range(3)]
     result = []
     for axis in periodic:
         others = cell[[a for a in periodic if a != axis]]
