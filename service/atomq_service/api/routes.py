@@ -159,16 +159,18 @@ async def wait_for_job(
     session.close()
     engine = request.app.state.engine
     loop = asyncio.get_running_loop()
-    deadline = loop.time() + timeout_s
-    pause = 0.002  # short first: small jobs end within milliseconds of their message
+    started = loop.time()
+    deadline = started + timeout_s
     while True:
         public = await asyncio.to_thread(_job_if_finished, engine, job_id)
         if public is not None:
             return public
-        if loop.time() >= deadline:
+        now = loop.time()
+        if now >= deadline:
             return await asyncio.to_thread(_job_now, engine, job_id)
-        await asyncio.sleep(pause)
-        pause = min(pause * 1.5, 0.05)
+        # Every 3 ms for the first second (small jobs end within milliseconds; a look is
+        # one indexed read), then every 50 ms.
+        await asyncio.sleep(0.003 if now - started < 1.0 else 0.05)
 
 
 def _job_if_finished(engine: Engine, job_id: int) -> JobPublic | None:
