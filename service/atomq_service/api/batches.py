@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, Header, Path, Query, Request
+from fastapi import APIRouter, Path, Query, Request
 
 from atomq.batches import BatchCreate, BatchPublic, BatchResults
 from atomq_service import batches
@@ -13,6 +13,7 @@ from atomq_service.api.deps import (
     MAX_ID,
     CurrentUser,
     DispatcherDep,
+    IdempotencyKey,
     SessionDep,
     SettingsDep,
 )
@@ -32,13 +33,7 @@ def create_batch(
     settings: SettingsDep,
     dispatcher: DispatcherDep,
     request: Request,
-    idempotency_key: Annotated[
-        str | None,
-        Header(
-            pattern=r"^[\x21-\x7e]{1,128}$",  # visible ASCII
-            description="Retries with the same key return the same batch.",
-        ),
-    ] = None,
+    idempotency_key: IdempotencyKey = None,
 ) -> BatchPublic:
     """Every structure becomes a job with the same task and calculator version; all are
     recorded, or (when any structure is refused, named by its index) none."""

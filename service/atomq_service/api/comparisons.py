@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, Header, Path, Request
+from fastapi import APIRouter, Path, Request
 
 from atomq.comparisons import ComparisonCreate, ComparisonPublic
 from atomq.jobs import JobState
@@ -14,6 +14,7 @@ from atomq_service.api.deps import (
     MAX_ID,
     CurrentUser,
     DispatcherDep,
+    IdempotencyKey,
     SessionDep,
     SettingsDep,
 )
@@ -32,13 +33,7 @@ def create_comparison(
     settings: SettingsDep,
     dispatcher: DispatcherDep,
     request: Request,
-    idempotency_key: Annotated[
-        str | None,
-        Header(
-            pattern=r"^[\x21-\x7e]{1,128}$",  # visible ASCII
-            description="Retries with the same key return the same comparison.",
-        ),
-    ] = None,
+    idempotency_key: IdempotencyKey = None,
 ) -> ComparisonPublic:
     """Rerun the selected finished jobs with another calculator version, as one batch:
     every job is created, or (when any is refused) none."""

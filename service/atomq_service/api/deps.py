@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from datetime import UTC, datetime
 from typing import Annotated, Any
 
-from fastapi import Depends, Path, Request
+from fastapi import Depends, Header, Path, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from pydantic import BaseModel
 from sqlmodel import Session, select
@@ -90,6 +90,14 @@ ArtifactId = Annotated[int, Path(ge=1, le=MAX_ID, description="An artifact's id.
 TokenId = Annotated[int, Path(ge=1, le=MAX_ID, description="A token's id.")]
 # Names and labels: printable text without control characters (PostgreSQL refuses NUL).
 NAME_PATTERN = r"^[A-Za-z0-9_.@+-]{1,128}$"
+# A client's key for one submission: a retry with the same key gets the same record back.
+IdempotencyKey = Annotated[
+    str | None,
+    Header(
+        pattern=r"^[\x21-\x7e]{1,128}$",  # visible ASCII
+        description="Retries with the same key return what the first try created.",
+    ),
+]
 UserName = Annotated[str, Path(pattern=r"^[A-Za-z0-9_.@-]{1,64}$")]
 Label = Annotated[str, Path(pattern=r"^[A-Za-z0-9_.-]{1,64}$")]
 

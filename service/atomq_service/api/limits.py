@@ -21,6 +21,20 @@ async def _refuse(send: Send, status: int, code: str, detail: str, retry_after: 
     await send({"type": "http.response.body", "body": body})
 
 
+def _replaying(body: bytes, receive: Receive) -> Receive:
+    """A receive that hands the app the body read here, whole, then the real messages."""
+    replayed = False
+
+    async def replay() -> Message:
+        nonlocal replayed
+        if replayed:
+            return await receive()
+        replayed = True
+        return {"type": "http.request", "body": body, "more_body": False}
+
+    return replay
+
+
 class BodySizeLimit:
     """413 for a body over the limit, whether it declares its length or streams. A streamed
     body is read up to the limit here and handed on whole."""
@@ -59,17 +73,7 @@ class BodySizeLimit:
             chunks.append(chunk)
             if not event.get("more_body", False):
                 break
-        body = b"".join(chunks)
-        replayed = False
-
-        async def replay() -> Message:
-            nonlocal replayed
-            if replayed:
-                return await receive()
-            replayed = True
-            return {"type": "http.request", "body": body, "more_body": False}
-
-        await self.app(scope, replay, send)
+        await self.app(scope, _replaying(b"".join(chunks), receive), send)
 
 
 class RateLimit:
@@ -173,13 +177,4 @@ class GzipRequest:
             if name not in (b"content-encoding", b"content-length")
         ]
         plain_headers.append((b"content-length", str(len(body)).encode()))
-        replayed = False
-
-        async def replay() -> Message:
-            nonlocal replayed
-            if replayed:
-                return await receive()
-            replayed = True
-            return {"type": "http.request", "body": body, "more_body": False}
-
-        await self.app({**scope, "headers": plain_headers}, replay, send)
+        await self.app({**scope, "headers": plain_headers}, _replaying(body, receive), send)

@@ -6,7 +6,7 @@ import asyncio
 from datetime import datetime
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Header, Query, Request
+from fastapi import APIRouter, Query, Request
 from fastapi.responses import FileResponse, StreamingResponse
 from sqlalchemy import Engine
 from sqlmodel import Session, col, select
@@ -22,6 +22,7 @@ from atomq_service.api.deps import (
     ArtifactId,
     CurrentUser,
     DispatcherDep,
+    IdempotencyKey,
     JobId,
     Label,
     SessionDep,
@@ -50,13 +51,7 @@ def create_job(
     settings: SettingsDep,
     dispatcher: DispatcherDep,
     request: Request,
-    idempotency_key: Annotated[
-        str | None,
-        Header(
-            pattern=r"^[\x21-\x7e]{1,128}$",  # visible ASCII
-            description="Retries with the same key return the same job.",
-        ),
-    ] = None,
+    idempotency_key: IdempotencyKey = None,
 ) -> JobPublic:
     if idempotency_key is not None:
         earlier = jobs.find_by_idempotency_key(session, user, idempotency_key, body)
