@@ -15,13 +15,17 @@ from contextlib import contextmanager
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
+from sqlalchemy.pool import NullPool
 from sqlmodel import Session, SQLModel
 
 
-def make_engine(url: str) -> Engine:
+def make_engine(url: str, pooled: bool = True) -> Engine:
+    """pooled=False opens a connection per transaction and keeps none between them (for a
+    thread in a process that forks: no open connection may be copied into a child)."""
+    pool: dict[str, Any] = {"pool_size": 20} if pooled else {"poolclass": NullPool}
     if url.startswith("sqlite"):
         engine = create_engine(
-            url, connect_args={"check_same_thread": False, "timeout": 60}, pool_size=20
+            url, connect_args={"check_same_thread": False, "timeout": 60}, **pool
         )
 
         @event.listens_for(engine, "connect")
@@ -39,6 +43,8 @@ def make_engine(url: str) -> Engine:
             connection.exec_driver_sql("BEGIN IMMEDIATE")
 
         return engine
+    if not pooled:
+        return create_engine(url, poolclass=NullPool)
     return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20)
 
 

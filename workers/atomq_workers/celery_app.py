@@ -27,10 +27,7 @@ def engine() -> Engine:
 
 @worker_process_init.connect
 def _fresh_engine_per_child(**_kwargs: object) -> None:
-    # Connections must not cross fork(); each prefork child opens its own. The parent's
-    # pool (its heartbeat's) is forgotten here without closing the parent's connections.
-    if engine.cache_info().currsize:
-        engine().dispose(close=False)
+    # Connections must not cross fork(); each prefork child opens its own.
     engine.cache_clear()
 
 
@@ -42,7 +39,10 @@ def _announce(sender: object = None, **_kwargs: object) -> None:
     # In Celery's main process only: prefork children never run the heartbeat.
     global _heartbeat
     name = str(getattr(sender, "hostname", "") or f"atomq-{os.getpid()}")
-    _heartbeat = WorkerHeartbeat(engine(), name, settings.worker_heartbeat_s)
+    # Its own unpooled engine: this process forks replacement children, and a child must
+    # never inherit an open SQLite connection (see WorkerHeartbeat).
+    heartbeat_engine = make_engine(settings.resolved_database_url, pooled=False)
+    _heartbeat = WorkerHeartbeat(heartbeat_engine, name, settings.worker_heartbeat_s)
     _heartbeat.start()
 
 

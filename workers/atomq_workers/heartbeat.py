@@ -23,7 +23,21 @@ UNAVAILABLE_ENV = "ATOMQ_WORKER_UNAVAILABLE"
 CONCURRENCY_ENV = "ATOMQ_WORKER_CONCURRENCY"
 
 
+# Held around every heartbeat transaction and taken before Celery forks a replacement
+# child, so a fork never happens while the heartbeat has a connection open: a child that
+# inherits an open SQLite connection (and frees it) can leave the database locked for all.
+_no_fork_now = threading.Lock()
+os.register_at_fork(
+    before=_no_fork_now.acquire,
+    after_in_parent=_no_fork_now.release,
+    after_in_child=_no_fork_now.release,
+)
+
+
 class WorkerHeartbeat:
+    """Renews the worker's record. Give it an unpooled engine (make_engine(pooled=False)):
+    between transactions it then holds no connection a forked child could inherit."""
+
     def __init__(self, engine: Engine, name: str, interval_s: float) -> None:
         self.engine = engine
         self.name = name
@@ -34,7 +48,7 @@ class WorkerHeartbeat:
     def start(self) -> None:
         calculators = json.loads(os.environ.get(CALCULATORS_ENV, "[]"))
         unavailable = json.loads(os.environ.get(UNAVAILABLE_ENV, "{}"))
-        with transaction(self.engine) as session:
+        with _no_fork_now, transaction(self.engine) as session:
             worker = session.exec(select(Worker).where(Worker.name == self.name)).first()
             if worker is None:
                 worker = Worker(
@@ -59,7 +73,7 @@ class WorkerHeartbeat:
                 log.exception("worker heartbeat failed; retrying")
 
     def _touch(self, stopped: bool) -> None:
-        with transaction(self.engine) as session:
+        with _no_fork_now, transaction(self.engine) as session:
             worker = session.exec(select(Worker).where(Worker.name == self.name)).first()
             if worker is None:
                 return
