@@ -3,13 +3,16 @@ how to fix it."""
 
 from __future__ import annotations
 
+import functools
 import itertools
+from dataclasses import dataclass
 
 import numpy as np
 from ase import Atoms
 from ase.data import chemical_symbols
 from ase.neighborlist import neighbor_list
 from scipy.spatial import cKDTree
+from scipy.spatial.distance import cdist
 
 from atomq.structure import Structure
 from atomq.tasks import MD, NEB, Relax, Task, task_steps
@@ -54,9 +57,11 @@ def check_structure(structure: Structure, calculator: Calculator, settings: Sett
             f"{settings.max_atoms} (ATOMQ_MAX_ATOMS)",
         )
     check_elements(structure, calculator)
-    check_magnitudes(structure)
-    check_cell(structure)
-    check_distances(structure, settings.min_distance)
+    positions = np.array(structure.positions, dtype=float).reshape(-1, 3)
+    check_magnitudes(structure, positions)
+    cell = cell_geometry(structure.cell, structure.pbc)
+    check_cell(cell)
+    check_distances(structure, positions, cell, settings.min_distance)
 
 
 def check_md(structure: Structure, task: MD) -> None:
@@ -107,7 +112,7 @@ def check_md(structure: Structure, task: MD) -> None:
                 "radial distribution functions are normalised by the cell volume; "
                 "they need a structure periodic in all three directions",
             )
-        thinnest = min(t for _, t in periodic_thickness(np.array(structure.cell), structure.pbc))
+        thinnest = min(t for _, t in cell_geometry(structure.cell, structure.pbc).thickness)
         if task.rdf_rmax >= thinnest / 2:
             raise ApiError(
                 422,
@@ -153,15 +158,14 @@ def check_endpoints(initial: Structure, final: Structure) -> None:
 
 
 def check_elements(structure: Structure, calculator: Calculator) -> None:
-    covered = set(calculator.elements)
-    present = {chemical_symbols[z] for z in structure.numbers}
-    missing = sorted(present - covered)
+    present = {chemical_symbols[z] for z in set(structure.numbers)}
+    missing = sorted(present.difference(calculator.elements))
     if missing:
         raise ApiError(
             422,
             "element_not_covered",
             f"calculator {calculator.ref} does not cover {', '.join(missing)}; "
-            f"it covers {', '.join(sorted(covered))}",
+            f"it covers {', '.join(sorted(calculator.elements))}",
         )
 
 
@@ -176,7 +180,7 @@ MAX_MAGMOM_BOHR = 100.0
 MAX_MOMENTUM = 1e4  # amu * Angstrom / ASE time; hydrogen at 1e4 is far beyond any melt
 
 
-def check_magnitudes(structure: Structure) -> None:
+def check_magnitudes(structure: Structure, positions: np.ndarray) -> None:
     for name, values, bound in (
         ("initial_charges", structure.initial_charges, MAX_CHARGE_E),
         ("initial_magmoms", structure.initial_magmoms, MAX_MAGMOM_BOHR),
@@ -190,7 +194,7 @@ def check_magnitudes(structure: Structure) -> None:
                 f"values above {bound:g} are refused: check units and signs",
             )
     largest_cell = float(np.abs(np.array(structure.cell)).max())
-    largest_position = float(np.abs(np.array(structure.positions)).max())
+    largest_position = float(np.abs(positions).max())
     if max(largest_cell, largest_position) > MAX_LENGTH:
         what = "cell vector" if largest_cell >= largest_position else "position"
         raise ApiError(
@@ -201,17 +205,42 @@ def check_magnitudes(structure: Structure) -> None:
         )
 
 
-def check_cell(structure: Structure) -> None:
-    pbc = np.array(structure.pbc)
-    if not pbc.any():
-        return
-    cell = np.array(structure.cell)
-    periodic = cell[pbc]
-    # The periodic cell vectors must span as many dimensions as there are periodic axes.
-    scale = max(float(np.abs(cell).max()), 1.0)
-    rank = int(np.linalg.matrix_rank(periodic, tol=1e-8 * scale))
-    if rank < int(pbc.sum()):
-        axes = ", ".join("abc"[i] for i in np.flatnonzero(pbc))
+@dataclass(frozen=True)
+class CellGeometry:
+    """What the checks need to know of a cell, worked out once per distinct cell: the
+    structures of a batch usually share theirs."""
+
+    pbc: tuple[bool, bool, bool]
+    degenerate: bool  # the periodic vectors span fewer dimensions than there are of them
+    thickness: tuple[tuple[int, float], ...]  # (axis, lattice-plane spacing) per periodic axis
+    cell: np.ndarray  # rows are the cell vectors; read-only
+    inverse: np.ndarray | None  # cell^-1 when periodic along all three axes; read-only
+
+
+@functools.lru_cache(maxsize=1024)
+def cell_geometry(
+    cell: tuple[tuple[float, float, float], ...], pbc: tuple[bool, bool, bool]
+) -> CellGeometry:
+    vectors = np.array(cell, dtype=float)
+    vectors.flags.writeable = False
+    mask = np.array(pbc)
+    degenerate = False
+    if mask.any():
+        # The periodic cell vectors must span as many dimensions as there are periodic axes.
+        scale = max(float(np.abs(vectors).max()), 1.0)
+        rank = int(np.linalg.matrix_rank(vectors[mask], tol=1e-8 * scale))
+        degenerate = rank < int(mask.sum())
+    inverse = None
+    if mask.all() and not degenerate:
+        inverse = np.linalg.inv(vectors)
+        inverse.flags.writeable = False
+    thickness = () if degenerate else tuple(periodic_thickness(vectors, pbc))
+    return CellGeometry(pbc, degenerate, thickness, vectors, inverse)
+
+
+def check_cell(cell: CellGeometry) -> None:
+    if cell.degenerate:
+        axes = ", ".join("abc"[i] for i in range(3) if cell.pbc[i])
         raise ApiError(
             422,
             "degenerate_cell",
@@ -220,13 +249,14 @@ def check_cell(structure: Structure) -> None:
         )
 
 
-def check_distances(structure: Structure, min_distance: float) -> None:
+def check_distances(
+    structure: Structure, positions: np.ndarray, cell: CellGeometry, min_distance: float
+) -> None:
     if structure.natoms < 2 and not any(structure.pbc):
         return
-    atoms = structure.to_atoms()
     # A periodic cell thinner than the threshold puts every atom next to its own images;
     # refuse it before a neighbour search whose cost grows as (threshold / thickness)^3.
-    for axis, thickness in periodic_thickness(np.array(structure.cell), structure.pbc):
+    for axis, thickness in cell.thickness:
         if thickness < min_distance:
             raise ApiError(
                 422,
@@ -235,57 +265,72 @@ def check_distances(structure: Structure, min_distance: float) -> None:
                 f"are closer than {min_distance} Angstrom to their own periodic images; "
                 "check the cell (Angstrom) or set pbc=False",
             )
-    closest = _closest_pair(atoms, min_distance)
+    closest = closest_pair(positions, cell, min_distance)
     if closest is not None:
         i, j, distance = closest
-        symbols = atoms.get_chemical_symbols()
-        what = "its own periodic image" if i == j else f"atom {j} ({symbols[j]})"
+        symbols = [chemical_symbols[structure.numbers[k]] for k in (i, j)]
+        what = "its own periodic image" if i == j else f"atom {j} ({symbols[1]})"
         raise ApiError(
             422,
             "atoms_too_close",
-            f"atom {i} ({symbols[i]}) and {what} are {distance:.3f} Angstrom apart, "
+            f"atom {i} ({symbols[0]}) and {what} are {distance:.3f} Angstrom apart, "
             f"closer than {min_distance} Angstrom; check units (Angstrom) and duplicated atoms",
         )
 
 
-def _closest_pair(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | None:
+def closest_pair(
+    positions: np.ndarray, cell: CellGeometry, cutoff: float
+) -> tuple[int, int, float] | None:
     """The closest pair (an atom and itself through a periodic image included) nearer than
     `cutoff`, by the minimum-image distance; None if there is none."""
-    pbc = atoms.pbc
-    if pbc.any() != pbc.all():  # a slab or wire: ASE's neighbour list handles mixed pbc
+    if any(cell.pbc) != all(cell.pbc):  # a slab or wire: ASE's neighbour list handles mixed pbc
+        atoms = Atoms(numbers=np.ones(len(positions)), positions=positions, cell=cell.cell)
+        atoms.pbc = cell.pbc
         first, second, distance = neighbor_list("ijd", atoms, cutoff, self_interaction=False)
         if not len(distance):
             return None
         k = int(np.argmin(distance))
         return int(first[k]), int(second[k]), float(distance[k])
-    return _closest_pair_tree(atoms, cutoff)
+    return _closest_pair_tree(positions, cell, cutoff)
 
 
-def _closest_pair_tree(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | None:
+def _closest_pair_tree(
+    positions: np.ndarray, cell: CellGeometry, cutoff: float
+) -> tuple[int, int, float] | None:
     """A k-d tree over the atoms plus the periodic copies that lie within `cutoff` of a
     face. Valid while `cutoff` is below every lattice-plane spacing (the caller checks):
     then a close pair differs by at most one cell vector per axis. ASE's neighbour list
     bins space by the cutoff, and half-Angstrom bins cost 1 s at 20 000 atoms (this,
-    0.03 s) and 0.8 ms for 32 atoms (this, 0.5 ms)."""
-    natoms = len(atoms)
-    points, owners = [atoms.positions], [np.arange(natoms)]
-    if atoms.pbc.all():
-        cell = atoms.cell.array
-        fractional = np.linalg.solve(cell.T, atoms.positions.T).T % 1.0
-        positions = fractional @ cell  # wrapped into the cell
+    0.03 s) and 0.8 ms for 32 atoms (this, 0.1 ms)."""
+    natoms = len(positions)
+    points, owners = [positions], [np.arange(natoms)]
+    if cell.inverse is not None:
+        fractional = (positions @ cell.inverse) % 1.0
+        positions = fractional @ cell.cell  # wrapped into the cell
         # How far, in fractional units, `cutoff` reaches across each axis's lattice planes.
-        reach = cutoff / np.array([t for _, t in periodic_thickness(cell, (True, True, True))])
-        low, high = fractional < reach, fractional > 1 - reach  # [atom, axis]
+        reach = cutoff / np.array([t for _, t in cell.thickness])
         # A copy moved by +1 cell along an axis lands near the far face only if the atom
         # was near the near one (and the other way round); 0 along an axis asks nothing.
-        shifts = np.array([s for s in itertools.product((-1, 0, 1), repeat=3) if any(s)])
-        wanted = np.where(
-            shifts[:, None, :] == 1, low, np.where(shifts[:, None, :] == -1, high, True)
-        ).all(axis=2)  # [shift, atom]
+        allowed = np.ones((3, natoms, 3), dtype=bool)  # [shift -1/0/+1, atom, axis]
+        allowed[0], allowed[2] = fractional > 1 - reach, fractional < reach
+        index = SHIFTS + 1
+        wanted = (
+            allowed[index[:, 0], :, 0] & allowed[index[:, 1], :, 1] & allowed[index[:, 2], :, 2]
+        )  # [shift, atom]
         which_shift, which_atom = np.nonzero(wanted)
-        points = [positions, positions[which_atom] + shifts[which_shift] @ cell]
+        points = [positions, positions[which_atom] + SHIFTS[which_shift] @ cell.cell]
         owners = [np.arange(natoms), which_atom]
     everything, owner = np.vstack(points), np.concatenate(owners)
+    if natoms <= FEW_ATOMS:
+        # Every distance from an original atom: cheaper than building a tree when few.
+        distances = cdist(everything[:natoms], everything)
+        distances[np.arange(natoms), np.arange(natoms)] = np.inf  # an atom and itself
+        i, m = divmod(int(np.argmin(distances)), len(everything))
+        closest = float(distances[i, m])
+        if closest > cutoff:
+            return None
+        i, j = sorted((i, int(owner[m])))
+        return i, j, closest
     pairs = cKDTree(everything).query_pairs(cutoff, output_type="ndarray")
     pairs = pairs[(pairs < natoms).any(axis=1)]  # every close pair has an original atom
     if not len(pairs):
@@ -294,6 +339,14 @@ def _closest_pair_tree(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | 
     k = int(np.argmin(lengths))
     i, j = sorted((int(owner[pairs[k, 0]]), int(owner[pairs[k, 1]])))
     return i, j, float(lengths[k])
+
+
+# Up to this many atoms the pair search measures every distance from each atom (about
+# 10 microseconds at 32 atoms; the k-d tree needs 30): a batch's small cells pass fast.
+FEW_ATOMS = 64
+
+# The 26 neighbouring cells, as whole cell vectors along a, b and c.
+SHIFTS = np.array([s for s in itertools.product((-1, 0, 1), repeat=3) if any(s)])
 
 
 def periodic_thickness(cell: np.ndarray, pbc: tuple[bool, bool, bool]) -> list[tuple[int, float]]:
