@@ -10,11 +10,15 @@ from __future__ import annotations
 
 import json
 import math
+from collections import Counter
+from collections.abc import Iterable
+from itertools import chain
 from typing import Annotated, Any, Literal
 
 import numpy as np
 from ase import Atoms
 from ase.constraints import FixAtoms, FixCartesian
+from ase.data import chemical_symbols
 from pydantic import (
     BaseModel,
     ConfigDict,
@@ -83,9 +87,9 @@ class Structure(BaseModel):
         n = len(self.numbers)
         if n == 0:
             raise ValueError("structure has no atoms; give at least one atom")
-        for z in self.numbers:
-            if not 1 <= z <= 118:
-                raise ValueError(f"atomic number {z} is not an element (use 1 to 118)")
+        if not 1 <= min(self.numbers) <= max(self.numbers) <= 118:
+            z = next(z for z in self.numbers if not 1 <= z <= 118)
+            raise ValueError(f"atomic number {z} is not an element (use 1 to 118)")
         per_atom: dict[str, list[Any] | None] = {
             "positions": self.positions,
             "initial_charges": self.initial_charges,
@@ -96,16 +100,18 @@ class Structure(BaseModel):
         for name, values in per_atom.items():
             if values is not None and len(values) != n:
                 raise ValueError(f"{name} has {len(values)} entries but there are {n} atoms")
-        for i, xyz in enumerate(self.positions):
-            if not all(math.isfinite(x) for x in xyz):
-                raise ValueError(f"position of atom {i} is not finite: {list(xyz)}")
-        if not all(math.isfinite(x) for row in self.cell for x in row):
+        # One pass in C over every number first (this runs on each structure of a
+        # batch, on both sides); the slow search for the culprit only when one fails.
+        if not all_finite(chain.from_iterable(self.positions)):
+            i = next(i for i, xyz in enumerate(self.positions) if not all_finite(xyz))
+            raise ValueError(f"position of atom {i} is not finite: {list(self.positions[i])}")
+        if not all_finite(chain.from_iterable(self.cell)):
             raise ValueError("cell contains a value that is not finite")
         for name in ("initial_charges", "initial_magmoms"):
             values = getattr(self, name)
-            if values is not None and not all(math.isfinite(x) for x in values):
+            if values is not None and not all_finite(values):
                 raise ValueError(f"{name} contains a value that is not finite")
-        if self.momenta is not None and not all(math.isfinite(x) for p in self.momenta for x in p):
+        if self.momenta is not None and not all_finite(chain.from_iterable(self.momenta)):
             raise ValueError("momenta contain a value that is not finite")
         _check_info_finite(self.info, "info")
         for c in self.constraints:
@@ -149,15 +155,16 @@ class Structure(BaseModel):
         magmoms = atoms.get_initial_magnetic_moments()
         if magmoms.ndim != 1:
             raise StructureError("non-collinear magnetic moments are not supported yet")
+        # numpy's tolist() gives Python floats and bools; the model makes the rows tuples.
         return cls(
             numbers=atoms.numbers.tolist(),
-            positions=[_vec3(p) for p in atoms.positions],
-            cell=(_vec3(atoms.cell[0]), _vec3(atoms.cell[1]), _vec3(atoms.cell[2])),
-            pbc=(bool(atoms.pbc[0]), bool(atoms.pbc[1]), bool(atoms.pbc[2])),
+            positions=np.asarray(atoms.positions, dtype=float).tolist(),
+            cell=np.asarray(atoms.cell.array, dtype=float).tolist(),
+            pbc=np.asarray(atoms.pbc, dtype=bool).tolist(),
             constraints=constraints,
             initial_charges=_optional_array(atoms, "initial_charges"),
             initial_magmoms=_optional_array(atoms, "initial_magmoms"),
-            momenta=[_vec3(p) for p in atoms.arrays["momenta"]]
+            momenta=np.asarray(atoms.arrays["momenta"], dtype=float).tolist()
             if "momenta" in atoms.arrays
             else None,
             tags=atoms.get_tags().tolist() if "tags" in atoms.arrays else None,
@@ -192,7 +199,17 @@ class Structure(BaseModel):
         return atoms
 
     def chemical_formula(self) -> str:
-        return str(Atoms(numbers=self.numbers).get_chemical_formula(mode="hill"))
+        """The formula as ASE's "hill" mode writes it (carbon, then hydrogen, then the
+        rest alphabetically; ASE puts hydrogen first even without carbon), counted here
+        without building an Atoms: this runs for every structure of a batch."""
+        counts = {chemical_symbols[z]: n for z, n in Counter(self.numbers).items()}
+        first = [s for s in ("C", "H") if s in counts]
+        order = first + sorted(s for s in counts if s not in first)
+        return "".join(s if counts[s] == 1 else f"{s}{counts[s]}" for s in order)
+
+
+def all_finite(values: Iterable[float]) -> bool:
+    return all(map(math.isfinite, values))
 
 
 def _check_info_finite(value: Any, where: str) -> None:
@@ -205,10 +222,6 @@ def _check_info_finite(value: Any, where: str) -> None:
     elif isinstance(value, dict):
         for key, item in value.items():
             _check_info_finite(item, f"{where}[{key!r}]")
-
-
-def _vec3(row: Any) -> Vec3:
-    return (float(row[0]), float(row[1]), float(row[2]))
 
 
 def _optional_array(atoms: Atoms, name: str) -> list[float] | None:

@@ -253,3 +253,16 @@ def test_malformed_json_text_is_refused_too() -> None:
     text = json.dumps(cu_dimer(positions=[[0, 0, 0], [math.nan, 0, 0]]), allow_nan=True)
     with pytest.raises(ValidationError, match="not finite"):
         Structure.model_validate_json(text)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.integers(1, 118), min_size=1, max_size=40), st.booleans())
+def test_chemical_formula_is_ases_hill_formula(numbers: list[int], with_carbon: bool) -> None:
+    # Reference: ASE's own Atoms.get_chemical_formula(mode="hill"); carbon is forced in
+    # half the cases, since its presence changes the order.
+    if with_carbon:
+        numbers = [*numbers, 6, 1]
+    structure = Structure(
+        numbers=numbers, positions=[(float(i), 0.0, 0.0) for i in range(len(numbers))]
+    )
+    assert structure.chemical_formula() == Atoms(numbers=numbers).get_chemical_formula(mode="hill")
