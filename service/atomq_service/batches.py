@@ -14,11 +14,11 @@ from collections import Counter
 from collections.abc import Sequence
 from typing import Any
 
-from sqlalchemy import func, insert
+from sqlalchemy import Engine, func, insert
 from sqlmodel import Session, col, select
 
 from atomq.batches import BatchCreate, BatchItem, BatchPublic, BatchResults
-from atomq.hashing import input_hash
+from atomq.hashing import hash_of_dumped
 from atomq.jobs import JobState
 from atomq.tasks import MD, Task
 from atomq_service import registry
@@ -84,9 +84,15 @@ def create_batch(
             ) from None
         tasks.append(task)
     assert owner.id is not None and calculator.id is not None
+    # Each structure and task in its JSON form once: for the input hash and for the row.
+    dumped_structures = [structure.model_dump(mode="json") for structure in body.structures]
+    shared_task = body.task.model_dump(mode="json")
+    dumped_tasks = [
+        task.model_dump(mode="json") if task is not body.task else shared_task for task in tasks
+    ]
     hashes = [
-        input_hash(structure, task, calculator.ref, task.seed if isinstance(task, MD) else None)
-        for structure, task in zip(body.structures, tasks, strict=True)
+        hash_of_dumped(structure, task_json, calculator.ref, seed_of(task))
+        for structure, task_json, task in zip(dumped_structures, dumped_tasks, tasks, strict=True)
     ]
     earlier = reusable_results(session, hashes) if body.reuse else {}
     to_queue = sum(1 for hashed in hashes if hashed not in earlier)
@@ -106,8 +112,8 @@ def create_batch(
     session.flush()
     now = utcnow()
     rows: list[dict[str, Any]] = []
-    for index, (structure, task, hashed) in enumerate(
-        zip(body.structures, tasks, hashes, strict=True)
+    for index, (structure, dumped, task, task_json, hashed) in enumerate(
+        zip(body.structures, dumped_structures, tasks, dumped_tasks, hashes, strict=True)
     ):
         original = earlier.get(hashed)
         rows.append(
@@ -117,12 +123,12 @@ def create_batch(
                 "kind": task.kind,
                 "calculator_id": calculator.id,
                 "calculator_ref": calculator.ref,
-                "task": task.model_dump(mode="json"),
-                "structure": structure.model_dump(mode="json"),
+                "task": task_json,
+                "structure": dumped,
                 "natoms": structure.natoms,
                 "formula": structure.chemical_formula(),
                 "input_hash": hashed,
-                "seed": task.seed if isinstance(task, MD) else None,
+                "seed": seed_of(task),
                 "parents": [],
                 "time_limit_s": time_limit_s,
                 "attempts": 0,
@@ -155,6 +161,10 @@ def create_batch(
     return batch
 
 
+def seed_of(task: Task) -> int | None:
+    return task.seed if isinstance(task, MD) else None
+
+
 def reusable_results(session: Session, hashes: Sequence[str]) -> dict[str, tuple[Job, JobResult]]:
     """For each input hash with a job that succeeded (and computed it itself): the oldest
     such job and its result. A few queries for any number of hashes."""
@@ -174,6 +184,22 @@ def reusable_results(session: Session, hashes: Sequence[str]) -> dict[str, tuple
         for job, stored in rows:
             found.setdefault(job.input_hash, (job, stored))
     return found
+
+
+def unfinished_jobs(engine: Engine, batch_id: int) -> int:
+    """How many of the batch's jobs are queued or running (404 for no such batch): one
+    count on the (batch_id, state) index."""
+    with engine.connect() as connection:
+        if connection.execute(select(Batch.id).where(Batch.id == batch_id)).first() is None:
+            raise ApiError(404, "batch_not_found", f"no batch with id {batch_id}")
+        unfinished = [JobState.queued.value, JobState.running.value]
+        return int(
+            connection.execute(
+                select(func.count())
+                .select_from(Job)
+                .where(Job.batch_id == batch_id, col(Job.state).in_(unfinished))
+            ).scalar_one()
+        )
 
 
 def queued_job_ids(session: Session, batch: Batch) -> list[int]:
