@@ -142,7 +142,7 @@ def run(stack: Stack, options: Options) -> list[Entry]:
                 ),
                 "queued (created -> a worker claimed it)": statistics.median(ms["queue"]),
                 "running (claimed -> result recorded)": statistics.median(ms["run"]),
-                "noticed (recorded -> the client has the result: polling + GET)": (
+                "noticed (recorded -> the client has the result: the waiting result route)": (
                     statistics.median(ms["notice"])
                 ),
             },

@@ -293,6 +293,19 @@ def json_body(text: str) -> dict[str, Any]:
     return {"content": content, "headers": headers}
 
 
+def _ask_wait_route(client: Client, path: str, deadline: float | None) -> bytes:
+    """One request to a /wait route: the service answers as soon as the work has ended,
+    or after at most 30 s (or what is left before `deadline`), and we ask again."""
+    left = 30.0 if deadline is None else max(deadline - time.monotonic(), 0.0)
+    response = client.request(
+        "GET",
+        path,
+        params={"timeout_s": min(left, 30.0)},
+        timeout=min(left, 30.0) + 30.0,  # the server holds the request that long
+    )
+    return response.content
+
+
 def result_atoms(result: Result) -> Atoms:
     """A result's final structure as ase.Atoms with a SinglePointCalculator holding its
     energy, forces and stress."""
@@ -329,8 +342,12 @@ class Batch:
     def wait(
         self, timeout: float | None = None, *, poll_interval: float = 0.5, progress: bool = False
     ) -> BatchPublic:
-        """Block until every job has finished; TimeoutError after `timeout` seconds."""
+        """Block until every job has finished; TimeoutError after `timeout` seconds.
+
+        With progress=True a count of finished jobs is redrawn on stderr."""
         deadline = None if timeout is None else time.monotonic() + timeout
+        if not progress:
+            return self._wait_on_server(timeout, deadline)
         interval = min(poll_interval, 0.02)
         while True:
             info = self.info()
@@ -349,6 +366,21 @@ class Batch:
                 )
             time.sleep(interval)
             interval = min(interval * 2, poll_interval)
+
+    def _wait_on_server(self, timeout: float | None, deadline: float | None) -> BatchPublic:
+        """Wait through the service's /wait route: it answers as soon as the last job
+        ends (or after at most 30 s, then we ask again)."""
+        while True:
+            answer = _ask_wait_route(self.client, f"/v1/batches/{self.id}/wait", deadline)
+            info = BatchPublic.model_validate_json(answer)
+            self._info = info
+            if info.finished:
+                return info
+            if deadline is not None and time.monotonic() >= deadline:
+                raise TimeoutError(
+                    f"batch {self.id} not finished after {timeout} s: {info.counts}; call "
+                    "wait() again or raise the timeout"
+                )
 
     def items(self, timeout: float | None = None, page: int = 500) -> list[BatchItem]:
         """Every job's state, error and result (None unless it succeeded), in order."""
@@ -457,14 +489,8 @@ class Job:
         """Wait through the service's /wait route: it answers as soon as the job ends (or
         after at most 30 s, then we ask again), so no time is lost between polls."""
         while True:
-            left = 30.0 if deadline is None else max(deadline - time.monotonic(), 0.0)
-            response = self.client.request(
-                "GET",
-                f"/v1/jobs/{self.id}/wait",
-                params={"timeout_s": min(left, 30.0)},
-                timeout=min(left, 30.0) + 30.0,  # the server holds the request that long
-            )
-            info = JobPublic.model_validate_json(response.content)
+            answer = _ask_wait_route(self.client, f"/v1/jobs/{self.id}/wait", deadline)
+            info = JobPublic.model_validate_json(answer)
             self._info = info
             if info.state.finished:
                 return info
@@ -476,15 +502,35 @@ class Job:
 
     def result(self, timeout: float | None = None) -> Result:
         """Wait for the job and return its result; JobFailed if it failed or was cancelled."""
-        info = self.wait(timeout)
-        if info.state is not JobState.succeeded:
-            raise JobFailed(self.id, info.state.value, info.error)
-        if info.converged is False:
+        deadline = None if timeout is None else time.monotonic() + timeout
+        while True:
+            # The result route waits for the job itself: one request waits and fetches.
+            left = 30.0 if deadline is None else max(deadline - time.monotonic(), 0.0)
+            try:
+                response = self.client.request(
+                    "GET",
+                    f"/v1/jobs/{self.id}/result",
+                    params={"wait_s": min(left, 30.0)},
+                    timeout=min(left, 30.0) + 30.0,  # the server holds the request that long
+                )
+                break
+            except InvalidRequest as error:
+                if error.code != "no_result":
+                    raise
+            info = self.info()  # no result yet: failed, cancelled, or still to come
+            if info.state.finished:
+                raise JobFailed(self.id, info.state.value, info.error) from None
+            if deadline is not None and time.monotonic() >= deadline:
+                raise TimeoutError(
+                    f"job {self.id} still {info.state.value} after {timeout} s; "
+                    "call result() again or raise the timeout"
+                )
+        result = _result_adapter.validate_json(response.content)
+        if getattr(result, "converged", None) is False:
             warnings.warn(
                 f"job {self.id} did NOT converge: it reached max_steps first", stacklevel=2
             )
-        response = self.client.request("GET", f"/v1/jobs/{self.id}/result")
-        return _result_adapter.validate_json(response.content)
+        return result
 
     def atoms(self, timeout: float | None = None) -> Atoms:
         """The final structure as ase.Atoms with a SinglePointCalculator holding the results."""

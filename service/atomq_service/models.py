@@ -5,7 +5,15 @@ from __future__ import annotations
 from datetime import UTC, datetime
 from typing import Any
 
-from sqlalchemy import JSON, BigInteger, Column, DateTime, TypeDecorator, UniqueConstraint
+from sqlalchemy import (
+    JSON,
+    BigInteger,
+    Column,
+    DateTime,
+    Index,
+    TypeDecorator,
+    UniqueConstraint,
+)
 from sqlmodel import Field, SQLModel
 
 
@@ -92,8 +100,12 @@ class Batch(SQLModel, table=True):
 
 
 class Job(SQLModel, table=True):
-    # A client's retry of the same submission (same owner, same key) finds this row.
-    __table_args__ = (UniqueConstraint("owner_id", "idempotency_key"),)
+    __table_args__ = (
+        # A client's retry of the same submission (same owner, same key) finds this row.
+        UniqueConstraint("owner_id", "idempotency_key"),
+        # A batch's unfinished jobs, counted while a client waits for the batch.
+        Index("ix_job_batch_state", "batch_id", "state"),
+    )
 
     id: int | None = Field(default=None, primary_key=True)
     owner_id: int = Field(foreign_key="user.id", index=True)
@@ -121,7 +133,7 @@ class Job(SQLModel, table=True):
     # Set when the result was taken from an earlier job with the same input hash.
     reused_from: int | None = Field(default=None, foreign_key="job.id", index=True)
     # Jobs submitted together: the batch and the structure's place in its list.
-    batch_id: int | None = Field(default=None, foreign_key="batch.id", index=True)
+    batch_id: int | None = Field(default=None, foreign_key="batch.id")  # indexed above
     batch_index: int | None = None
     converged: bool | None = None  # relax and NEB: False is shown prominently everywhere
     progress: dict[str, Any] | None = Field(default=None, sa_column=Column(JSON))

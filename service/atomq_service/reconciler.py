@@ -60,8 +60,11 @@ def reconcile_once(engine: Engine, dispatcher: Dispatcher, settings: Settings) -
 
 
 def mark_dispatched(engine: Engine, job_ids: list[int]) -> None:
-    with transaction(engine) as session:
-        session.execute(update(Job).where(col(Job.id).in_(job_ids)).values(dispatched_at=utcnow()))
+    # A plain connection, no ORM session: this runs after every submission.
+    with engine.begin() as connection:
+        connection.execute(
+            update(Job).where(col(Job.id).in_(job_ids)).values(dispatched_at=utcnow())
+        )
 
 
 async def run_forever(engine: Engine, dispatcher: Dispatcher, settings: Settings) -> None:

@@ -171,6 +171,7 @@ MATRIX: dict[tuple[str, str], tuple[str, ...]] = {
     ("POST", "/v1/batches"): (*DENIED, "201", "201", "201"),
     ("GET", "/v1/batches/{batch_id}"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/batches/{batch_id}/results"): (*DENIED, "200", "200", "200"),
+    ("GET", "/v1/batches/{batch_id}/wait"): (*DENIED, "200", "200", "200"),
     ("POST", "/v1/batches/{batch_id}/cancel"): (*DENIED, "200", "403 not_your_batch", "200"),
     ("POST", "/v1/comparisons"): (*DENIED, "201", "201", "201"),
     ("GET", "/v1/comparisons/{comparison_id}"): (*DENIED, "200", "200", "200"),
@@ -224,7 +225,9 @@ def prepare(lab: Lab, method: str, route: str) -> tuple[str, dict[str, Any] | No
             "/v1/batches", json={**body, "reuse": False}, headers=lab.headers["owner"]
         )
         assert created.status_code == 201, created.text
-        return route.replace("{batch_id}", str(created.json()["id"])), None
+        path = route.replace("{batch_id}", str(created.json()["id"]))
+        # Its job stays queued here: the wait answers at once instead of after 10 s.
+        return (f"{path}?timeout_s=0" if path.endswith("/wait") else path), None
     if route.startswith("/v1/comparisons"):
         # The finished job rerun under a calculator version of the cell's own.
         with transaction(lab.engine) as session:

@@ -68,7 +68,11 @@ RESPONSE_CHECKS = [
 # (up to a read timeout, or the 60 s the wait allows), so each case would wait it out.
 # Their 401/404 answers are covered in test_access.py, the wait's parameters in
 # test_wait.py.
-NOT_FUZZED = {("GET", "/v1/jobs/{job_id}/events"), ("GET", "/v1/jobs/{job_id}/wait")}
+NOT_FUZZED = {
+    ("GET", "/v1/jobs/{job_id}/events"),
+    ("GET", "/v1/jobs/{job_id}/wait"),
+    ("GET", "/v1/batches/{batch_id}/wait"),
+}
 
 
 @dataclass

@@ -2,9 +2,12 @@
 
 from __future__ import annotations
 
+import asyncio
 from typing import Annotated
 
 from fastapi import APIRouter, Path, Query, Request
+from sqlalchemy import Engine
+from sqlmodel import Session
 
 from atomq.batches import BatchCreate, BatchPublic, BatchResults
 from atomq_service import batches
@@ -57,6 +60,38 @@ def create_batch(
 def get_batch(batch_id: BatchId, _user: CurrentUser, session: SessionDep) -> BatchPublic:
     """The batch with its jobs counted by state."""
     return batches.to_public(session, batches.get_batch(session, batch_id))
+
+
+@router.get("/batches/{batch_id}/wait")
+async def wait_for_batch(
+    batch_id: BatchId,
+    _user: CurrentUser,
+    session: SessionDep,
+    request: Request,
+    timeout_s: Annotated[
+        float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
+    ] = 10.0,
+) -> BatchPublic:
+    """The batch once every job has finished, or as it is after `timeout_s`: one request
+    instead of polling, and the end heard within milliseconds."""
+    # The token was checked; end that transaction (on SQLite it holds the write lock the
+    # workers need to finish the jobs we are waiting for).
+    session.close()
+    engine = request.app.state.engine
+    loop = asyncio.get_running_loop()
+    deadline = loop.time() + timeout_s
+    while True:
+        unfinished = await asyncio.to_thread(batches.unfinished_jobs, engine, batch_id)
+        if unfinished == 0 or loop.time() >= deadline:
+            return await asyncio.to_thread(_batch_now, engine, batch_id)
+        # A look counts the unfinished jobs on an index, so it costs about as much as
+        # there are left: look rarely while many remain, every few ms near the end.
+        await asyncio.sleep(min(0.1, 0.003 + 1e-5 * unfinished))
+
+
+def _batch_now(engine: Engine, batch_id: int) -> BatchPublic:
+    with Session(engine, expire_on_commit=False) as session:
+        return batches.to_public(session, batches.get_batch(session, batch_id))
 
 
 @router.get("/batches/{batch_id}/results")

@@ -137,15 +137,18 @@ def get_job(job_id: JobId, _user: CurrentUser, session: SessionDep) -> JobPublic
     return jobs.to_public(session, [jobs.get_job(session, job_id)])[0]
 
 
+WaitSeconds = Annotated[
+    float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
+]
+
+
 @router.get("/jobs/{job_id}/wait", tags=["jobs"])
 async def wait_for_job(
     job_id: JobId,
     _user: CurrentUser,
     session: SessionDep,
     request: Request,
-    timeout_s: Annotated[
-        float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
-    ] = 10.0,
+    timeout_s: WaitSeconds = 10.0,
 ) -> JobPublic:
     """The job once it has finished, or as it is after `timeout_s`: a client waits with
     one request instead of polling, and hears of the end within milliseconds."""
@@ -153,28 +156,30 @@ async def wait_for_job(
     # which the worker needs to finish the job we are waiting for).
     session.close()
     engine = request.app.state.engine
+    await _until_finished(engine, job_id, timeout_s)
+    return await asyncio.to_thread(_job_now, engine, job_id)
+
+
+async def _until_finished(engine: Engine, job_id: int, timeout_s: float) -> None:
+    """Return once the job has finished, or after `timeout_s`."""
     loop = asyncio.get_running_loop()
     started = loop.time()
-    deadline = started + timeout_s
-    while True:
-        public = await asyncio.to_thread(_job_if_finished, engine, job_id)
-        if public is not None:
-            return public
+    while not await asyncio.to_thread(_has_finished, engine, job_id):
         now = loop.time()
-        if now >= deadline:
-            return await asyncio.to_thread(_job_now, engine, job_id)
+        if now - started >= timeout_s:
+            return
         # Every 3 ms for the first second (small jobs end within milliseconds; a look is
         # one indexed read), then every 50 ms.
         await asyncio.sleep(0.003 if now - started < 1.0 else 0.05)
 
 
-def _job_if_finished(engine: Engine, job_id: int) -> JobPublic | None:
-    """The job's record if it has finished; one indexed read while it has not."""
+def _has_finished(engine: Engine, job_id: int) -> bool:
+    """One indexed read; 404 for no such job."""
     with engine.connect() as connection:
         state = connection.execute(select(Job.state).where(col(Job.id) == job_id)).scalar()
     if state is None:
         raise ApiError(404, "job_not_found", f"no job with id {job_id}")
-    return _job_now(engine, job_id) if JobState(state).finished else None
+    return JobState(state).finished
 
 
 def _job_now(engine: Engine, job_id: int) -> JobPublic:
@@ -199,8 +204,25 @@ def cancel_job(job_id: JobId, user: CurrentUser, session: SessionDep) -> JobPubl
 
 
 @router.get("/jobs/{job_id}/result", tags=["results"], response_model=Result)
-def get_result(job_id: JobId, _user: CurrentUser, session: SessionDep) -> Any:
-    return jobs.get_result(session, jobs.get_job(session, job_id)).result
+async def get_result(
+    job_id: JobId,
+    _user: CurrentUser,
+    session: SessionDep,
+    request: Request,
+    wait_s: WaitSeconds = 0.0,
+) -> Any:
+    """The job's result; 409 no_result while it has none. With `wait_s`, an unfinished
+    job is first waited for that long (as /wait does), so one request both waits and
+    fetches."""
+    session.close()  # as in /wait: no transaction held while the worker finishes
+    if wait_s > 0:
+        await _until_finished(request.app.state.engine, job_id, wait_s)
+    return await asyncio.to_thread(_result_now, request.app.state.engine, job_id)
+
+
+def _result_now(engine: Engine, job_id: int) -> Any:
+    with Session(engine, expire_on_commit=False) as session:
+        return jobs.get_result(session, jobs.get_job(session, job_id)).result
 
 
 @router.get("/jobs/{job_id}/provenance", tags=["results"], response_model=Provenance)
