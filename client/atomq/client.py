@@ -23,6 +23,7 @@ from pydantic import TypeAdapter
 from atomq import config
 from atomq.admin import CalculatorCreate
 from atomq.batches import BatchCreate, BatchItem, BatchPublic, BatchResults
+from atomq.bulk import collector_paused
 from atomq.comparisons import Comparison, ComparisonCreate, ComparisonPublic
 from atomq.errors import (
     AtomqError,
@@ -140,17 +141,19 @@ class Client:
         """Queue many structures with one task and calculator in one request (up to
         20 000); returns at once with a Batch handle. Each structure becomes a job of its
         own; results come back in the order given."""
-        body = BatchCreate(
-            structures=[
-                s if isinstance(s, Structure) else Structure.from_atoms(s) for s in structures
-            ],
-            task=task,
-            calculator=calculator,
-            tags=tags or [],
-            time_limit_s=time_limit_s,
-            reuse=reuse,
-        )
-        response = self.request("POST", "/v1/batches", **json_body(body.model_dump_json()))
+        with collector_paused():
+            body = BatchCreate(
+                structures=[
+                    s if isinstance(s, Structure) else Structure.from_atoms(s) for s in structures
+                ],
+                task=task,
+                calculator=calculator,
+                tags=tags or [],
+                time_limit_s=time_limit_s,
+                reuse=reuse,
+            )
+            text = body.model_dump_json()
+        response = self.request("POST", "/v1/batches", **json_body(text))
         info = BatchPublic.model_validate_json(response.content)
         return Batch(self, info.id, info)
 
