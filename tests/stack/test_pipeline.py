@@ -47,6 +47,17 @@ def assert_bit_identical_to_ase(stack: Stack) -> None:
     assert np.array_equal(computed.get_forces(), reference.get_forces())
     assert np.array_equal(computed.get_stress(), reference.get_stress())
     assert np.array_equal(computed.positions, atoms.positions)
+    # The same through a batch (results are sent on as stored, on either database).
+    others = [rattled_copper() for _ in range(3)]
+    for seed, other in enumerate(others):
+        other.rattle(stdev=0.05, seed=100 + seed)
+    with stack.client() as client:
+        batch = client.submit_batch([atoms, *others], SinglePoint(), calculator="emt")
+        from_batch = batch.atoms(timeout=120)
+    for sent, back in zip([atoms, *others], from_batch, strict=True):
+        sent.calc = EMT()
+        assert back.get_potential_energy() == sent.get_potential_energy()
+        assert np.array_equal(back.get_forces(), sent.get_forces())
     assert provenance.calculator == "emt@1"
     assert provenance.backend == "emt"
     assert provenance.owner == "grace-member"
@@ -77,6 +88,9 @@ def test_provenance_names_calculator_version_and_packages(redis_stack: Stack) ->
     expected = input_hash(Structure.from_atoms(nickel), SinglePoint(), "emt@1", None)
     assert provenance.input_hash == info.input_hash == expected
     assert provenance.started_at <= provenance.finished_at
+    # The calculation's own time lies within the attempt's.
+    attempt_s = (provenance.finished_at - provenance.started_at).total_seconds()
+    assert provenance.compute_s is not None and 0 < provenance.compute_s <= attempt_s
     assert provenance.threads, "thread counts must be recorded"
 
 

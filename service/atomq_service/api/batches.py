@@ -120,16 +120,17 @@ def _batch_now(engine: Engine, batch_id: int) -> BatchPublic:
         return batches.to_public(session, batches.get_batch(session, batch_id))
 
 
-@router.get("/batches/{batch_id}/results")
+@router.get("/batches/{batch_id}/results", response_model=BatchResults)
 def get_batch_results(
     batch_id: BatchId,
     _user: CurrentUser,
     session: SessionDep,
     offset: Annotated[int, Query(ge=0, le=MAX_ID)] = 0,
     limit: Annotated[int, Query(ge=1, le=1000)] = 500,
-) -> BatchResults:
+) -> Response:
     """Results in submission order; a job not succeeded has its state and error only."""
-    return batches.results_page(session, batches.get_batch(session, batch_id), offset, limit)
+    page = batches.results_page_json(session, batches.get_batch(session, batch_id), offset, limit)
+    return Response(content=page, media_type="application/json")
 
 
 @router.post("/batches/{batch_id}/cancel")

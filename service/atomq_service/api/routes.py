@@ -7,7 +7,7 @@ from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request
-from fastapi.responses import FileResponse, StreamingResponse
+from fastapi.responses import FileResponse, Response, StreamingResponse
 from sqlalchemy import Engine
 from sqlmodel import Session, col, select
 
@@ -210,7 +210,7 @@ async def get_result(
     session: SessionDep,
     request: Request,
     wait_s: WaitSeconds = 0.0,
-) -> Any:
+) -> Response:
     """The job's result; 409 no_result while it has none. With `wait_s`, an unfinished
     job is first waited for that long (as /wait does), so one request both waits and
     fetches."""
@@ -220,9 +220,10 @@ async def get_result(
     return await asyncio.to_thread(_result_now, request.app.state.engine, job_id)
 
 
-def _result_now(engine: Engine, job_id: int) -> Any:
+def _result_now(engine: Engine, job_id: int) -> Response:
     with Session(engine, expire_on_commit=False) as session:
-        return jobs.get_result(session, jobs.get_job(session, job_id)).result
+        text = jobs.result_json(session, jobs.get_job(session, job_id))
+    return Response(content=text, media_type="application/json")
 
 
 @router.get("/jobs/{job_id}/provenance", tags=["results"], response_model=Provenance)
