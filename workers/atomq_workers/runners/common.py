@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 from ase import Atoms
 from ase.optimize import BFGS, FIRE, LBFGS, MDMin
 from ase.optimize.optimize import Optimizer
@@ -24,7 +25,7 @@ def has_stress(atoms: Atoms) -> bool:
 
 def read_properties(atoms: Atoms) -> tuple[float, list[Vec3], Voigt6 | None]:
     energy = float(atoms.get_potential_energy())
-    forces = [(float(f[0]), float(f[1]), float(f[2])) for f in atoms.get_forces()]
+    forces: list[Vec3] = np.asarray(atoms.get_forces(), dtype=float).tolist()  # Python floats
     stress: Voigt6 | None = None
     if has_stress(atoms):
         s = [float(x) for x in atoms.get_stress(voigt=True)]
