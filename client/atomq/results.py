@@ -168,3 +168,8 @@ class Provenance(BaseModel):
     artifacts: list[ArtifactRecord] = Field(default_factory=list)
     started_at: datetime
     finished_at: datetime
+    compute_s: float | None = Field(
+        default=None,
+        description="Seconds the task itself ran in the worker (the calculation; not the "
+        "queue, loading the model or recording); absent in records from before it was kept.",
+    )

@@ -663,6 +663,7 @@ def compute(
     result: ResultModel | None = None
     state, reason = JobState.succeeded, None
     loaded = None
+    compute_s = 0.0
     try:
         if lease.cancel_requested:  # asked while the job waited in its group
             raise Stop(0, JobState.cancelled, "cancelled before it started")
@@ -671,7 +672,9 @@ def compute(
         atoms = (
             None if isinstance(task, NEB) else Structure.model_validate(job.structure).to_atoms()
         )
+        computing = time.perf_counter()
         result = run_task(atoms, loaded, task, report, artifacts)
+        compute_s = time.perf_counter() - computing
     except Superseded:
         log.warning("job %s attempt %s lost its lease; discarding its work", job_id, attempt)
         artifacts.close()
@@ -699,6 +702,7 @@ def compute(
             artifacts=[],  # filled with ids once the artifact rows exist
             started_at=started_at,
             finished_at=utcnow(),
+            compute_s=compute_s,
             **environment(loaded.backend if loaded else None, record.parameters),  # type: ignore[arg-type]
         )
     return Computed(job_id, attempt, state, reason, result, provenance, written, report)
