@@ -9,6 +9,7 @@ from collections import defaultdict
 from collections.abc import Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 from pydantic import BaseModel
 from sqlalchemy import Text, cast, func
@@ -197,16 +198,17 @@ def canonical_package(name: str) -> str:
     return re.sub(r"[-_.]+", "-", name).lower()
 
 
-def package_rows(job_id: int, packages: Mapping[str, str]) -> list[JobPackage]:
-    """The JobPackage rows for a result's provenance `packages` (name -> version). A
-    package the worker recorded as "not installed" has no version to find it by."""
+def package_rows(job_id: int, packages: Mapping[str, str]) -> list[dict[str, Any]]:
+    """The JobPackage rows (as column values, for an insert) for a result's provenance
+    `packages` (name -> version). A package the worker recorded as "not installed" has no
+    version to find it by."""
     versions = {
         canonical_package(name): version
         for name, version in packages.items()
         if version != "not installed"  # atomq_workers.provenance.package_version's word
     }
     return [
-        JobPackage(job_id=job_id, package=name, version=version)
+        {"job_id": job_id, "package": name, "version": version}
         for name, version in sorted(versions.items())
     ]
 

@@ -313,7 +313,7 @@ def test_listing_with_every_filter_costs_the_same_statements_for_more_jobs(app: 
 
 def test_package_rows_use_the_normal_name_and_skip_what_was_not_installed() -> None:
     rows = package_rows(7, {"Mace_Torch": "0.3.6", "ase": "3.23.0", "dftd3": "not installed"})
-    assert [(r.job_id, r.package, r.version) for r in rows] == [
+    assert [(r["job_id"], r["package"], r["version"]) for r in rows] == [
         (7, "ase", "3.23.0"),
         (7, "mace-torch", "0.3.6"),
     ]

@@ -642,7 +642,7 @@ def _record_many(connection: Connection, computed: list[Computed]) -> set[int]:
     if results:
         connection.execute(insert(JobResult), results)
     if packages:
-        connection.execute(insert(JobPackage), [row.model_dump() for row in packages])
+        connection.execute(insert(JobPackage), packages)
     return owned
 
 
@@ -788,7 +788,7 @@ def _record(connection: Connection, computed: Computed) -> bool:
             )
         )
         # In the same transaction, so a result is never without its audit rows.
-        packages = [row.model_dump() for row in package_rows(job_id, provenance.packages)]
+        packages = package_rows(job_id, provenance.packages)
         if packages:
             connection.execute(insert(JobPackage), packages)
     return True
