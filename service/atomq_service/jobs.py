@@ -61,8 +61,8 @@ def find_by_idempotency_key(
 
 
 def check_queue_limit(session: Session, owner: User, settings: Settings, adding: int = 1) -> None:
-    """Refuse work that would take the owner past the queued-or-running limit."""
-    """Refuse new queued work past the per-user limit (a reused result queues nothing)."""
+    """Refuse new queued work that would take the owner past the queued-or-running limit
+    (a reused result queues nothing)."""
     active = session.exec(
         select(func.count())
         .select_from(Job)
@@ -336,10 +336,9 @@ def list_jobs(
         # 'emt' matches every version, 'emt@1' exactly that one.
         if "@" in calculator:
             query = query.where(Job.calculator_ref == calculator)
-        else:
-            query = query.where(
-                col(Job.calculator_ref).startswith(calculator + "@", autoescape=True)
-            )
+        else:  # by the versions' ids: an index range (a prefix match scanned every job)
+            versions = select(Calculator.id).where(Calculator.name == calculator)
+            query = query.where(col(Job.calculator_id).in_(versions))
     if kind is not None:
         query = query.where(Job.kind == kind)
     if tag is not None:

@@ -105,10 +105,13 @@ class Job(SQLModel, table=True):
         UniqueConstraint("owner_id", "idempotency_key"),
         # A batch's unfinished jobs, counted while a client waits for the batch.
         Index("ix_job_batch_state", "batch_id", "state"),
+        # An owner's queued and running jobs, counted at every submission (the queue
+        # limit): on owner_id alone the count read every job the owner ever ran.
+        Index("ix_job_owner_state", "owner_id", "state"),
     )
 
     id: int | None = Field(default=None, primary_key=True)
-    owner_id: int = Field(foreign_key="user.id", index=True)
+    owner_id: int = Field(foreign_key="user.id")  # indexed with state, above
     state: str = Field(default="queued", index=True)
     kind: str = Field(index=True)
     calculator_id: int = Field(foreign_key="calculator.id", index=True)
