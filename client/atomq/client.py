@@ -296,14 +296,16 @@ def json_body(text: str) -> dict[str, Any]:
     return {"content": content, "headers": headers}
 
 
-def _ask_wait_route(client: Client, path: str, deadline: float | None) -> bytes:
-    """One request to a /wait route: the service answers as soon as the work has ended,
-    or after at most 30 s (or what is left before `deadline`), and we ask again."""
+def _ask_wait_route(
+    client: Client, path: str, deadline: float | None, wait_param: str = "timeout_s"
+) -> bytes:
+    """One request to a route that waits: the service answers as soon as the work has
+    ended, or after at most 30 s (or what is left before `deadline`), and we ask again."""
     left = 30.0 if deadline is None else max(deadline - time.monotonic(), 0.0)
     response = client.request(
         "GET",
         path,
-        params={"timeout_s": min(left, 30.0)},
+        params={wait_param: min(left, 30.0)},
         timeout=min(left, 30.0) + 30.0,  # the server holds the request that long
     )
     return response.content
@@ -508,13 +510,9 @@ class Job:
         deadline = None if timeout is None else time.monotonic() + timeout
         while True:
             # The result route waits for the job itself: one request waits and fetches.
-            left = 30.0 if deadline is None else max(deadline - time.monotonic(), 0.0)
             try:
-                response = self.client.request(
-                    "GET",
-                    f"/v1/jobs/{self.id}/result",
-                    params={"wait_s": min(left, 30.0)},
-                    timeout=min(left, 30.0) + 30.0,  # the server holds the request that long
+                answer = _ask_wait_route(
+                    self.client, f"/v1/jobs/{self.id}/result", deadline, "wait_s"
                 )
                 break
             except InvalidRequest as error:
@@ -528,7 +526,7 @@ class Job:
                     f"job {self.id} still {info.state.value} after {timeout} s; "
                     "call result() again or raise the timeout"
                 )
-        result = _result_adapter.validate_json(response.content)
+        result = _result_adapter.validate_json(answer)
         if getattr(result, "converged", None) is False:
             warnings.warn(
                 f"job {self.id} did NOT converge: it reached max_steps first", stacklevel=2
