@@ -22,7 +22,8 @@ from suite.workloads import CU_A
 
 BUDGET = 1.1
 CALCULATOR = "sevennet-0@2024-07-11"
-LABEL = "SevenNet-0 Cu64, 2nd call on 1 worker"
+LABEL = "SevenNet-0 Cu64, warm calls on 1 worker"
+WARM_CALLS = 3  # after the first, which loads the model
 
 
 def cu64(seed: int) -> Atoms:
@@ -72,11 +73,12 @@ def pure_compute(stack: Stack, backend: str, parameters: dict[str, Any], calls: 
 
 def run(stack: Stack, options: Options) -> list[Entry]:
     workload = (
-        f"Two successive single points (energy, forces, stress) with {CALCULATOR} on "
+        f"{1 + WARM_CALLS} successive single points (energy, forces, stress) with {CALCULATOR} on "
         "distinct 64-atom Cu cells (4x4x1 fcc cubic, a=3.61 A, rattled 0.02 A), submitted "
         "one after the other to a worker of its own (`atomq worker --calculators "
         f"{CALCULATOR} --concurrency 1`, one thread): seconds from submit to result of the "
-        "second, which finds the model loaded. Reference: the pure compute of one such "
+        f"calls after the first, which find the model loaded ({WARM_CALLS}, the median: one "
+        "call moves by up to 20 % on this machine). Reference: the pure compute of one such "
         "single point, median over later calls in a fresh process that loaded the model "
         "the same way, one thread."
     )
@@ -92,7 +94,7 @@ def run(stack: Stack, options: Options) -> list[Entry]:
         try:
             stack.wait_for_worker(CALCULATOR, timeout_s=300)
             walls, runs = [], []
-            for seed in (1, 2):
+            for seed in range(1, 2 + WARM_CALLS):
                 start = time.perf_counter()
                 job = client.submit(cu64(seed), SinglePoint(), calculator=CALCULATOR)
                 job.result(timeout=300)
@@ -107,24 +109,26 @@ def run(stack: Stack, options: Options) -> list[Entry]:
         stack, record.backend, dict(record.parameters), 3 if options.quick else 5
     )
     compute_s = statistics.median(reference["calls_s"])
-    ratio = walls[1] / compute_s
+    warm_s = statistics.median(walls[1:])
+    ratio = warm_s / compute_s
     return [
         Entry(
             "warm model",
             stack.config,
             LABEL,
             workload,
-            measured=walls[1],
+            measured=warm_s,
             reference=compute_s,
             unit="s",
             ratio=ratio,
             budget=f"<= {BUDGET:g} x compute",
             met=ratio <= BUDGET,
-            samples={"reference_calls_s": reference["calls_s"]},
+            samples={"reference_calls_s": reference["calls_s"], "warm_calls_s": walls[1:]},
             derived={
                 "first_call_s (model loaded in the worker)": walls[0],
                 "second_call_s": walls[1],
-                "worker_run_s (claim to result, first, second)": runs,
+                "warm_calls_median_s": warm_s,
+                "worker_run_s (claim to result, each call)": runs,
                 "reference_load_s": reference["load_s"],
                 "reference_first_call_s": reference["first_call_s"],
                 "reference_median_call_s": compute_s,
