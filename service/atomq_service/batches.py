@@ -213,13 +213,24 @@ def queued_job_ids(session: Session, batch: Batch) -> list[int]:
     ]
 
 
-def message_size(session: Session, calculator_ref: str, jobs: int) -> int:
-    """Jobs per message. One message per job costs the broker round trip and a worker
-    wake-up each time; one message for all would leave all but one worker idle. About
-    four messages per worker process that serves the calculator, at most 32 jobs each,
-    keeps every process busy and the per-job cost of messaging small."""
+def message_sizes(session: Session, calculator_ref: str, jobs: int) -> list[int]:
+    """Jobs per message, in sending order. One message per job costs the broker round trip
+    and a worker wake-up each time; big messages leave processes idle at the end while
+    one works through its last. So each message takes about an eighth of what is left per
+    worker process that serves the calculator (at most 32): messages shrink as the batch
+    goes and the processes finish together."""
     processes = sum(w.concurrency for w in live_workers(session) if calculator_ref in w.calculators)
-    return max(1, min(32, math.ceil(jobs / (4 * max(processes, 1)))))
+    return shrinking_sizes(jobs, max(processes, 1))
+
+
+def shrinking_sizes(jobs: int, processes: int, largest: int = 32) -> list[int]:
+    sizes: list[int] = []
+    left = jobs
+    while left > 0:
+        size = max(1, min(largest, math.ceil(left / (8 * processes))))
+        sizes.append(size)
+        left -= size
+    return sizes
 
 
 def get_batch(session: Session, batch_id: int) -> Batch:

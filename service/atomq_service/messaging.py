@@ -83,15 +83,19 @@ class Dispatcher:
             return False
         return True
 
-    def send_many(self, job_ids: list[int], calculator_ref: str, per_message: int) -> list[int]:
-        """Publish jobs `per_message` at a time; returns the ids whose message the broker
-        took (the others stay queued in the database for the reconciler)."""
+    def send_many(self, job_ids: list[int], calculator_ref: str, sizes: list[int]) -> list[int]:
+        """Publish the jobs in messages of the given sizes, in order; returns the ids whose
+        message the broker took (the others stay queued in the database for the
+        reconciler)."""
         sent: list[int] = []
         queue = queue_name(calculator_ref)
         try:
             with self.celery.producer_or_acquire() as producer:  # one connection for all
-                for start in range(0, len(job_ids), per_message):
-                    chunk = job_ids[start : start + per_message]
+                start = 0
+                for size in sizes:
+                    chunk, start = job_ids[start : start + size], start + size
+                    if not chunk:
+                        break
                     task, args = (
                         (RUN_JOB_TASK, chunk) if len(chunk) == 1 else (RUN_JOBS_TASK, [chunk])
                     )

@@ -13,6 +13,7 @@ from sqlalchemy import func
 from sqlmodel import Session, select
 
 from atomq import Structure
+from atomq_service.batches import shrinking_sizes
 from atomq_service.models import Batch, Job, JobTag
 from atomq_workers.execute import run_job
 from tests.conftest import App
@@ -163,3 +164,13 @@ def test_cancel_ends_queued_jobs_and_keeps_finished_ones(app: App) -> None:
     run_all(app, batch["job_ids"][:1])
     cancelled = app.http.post(f"/v1/batches/{batch['id']}/cancel", headers=app.headers).json()
     assert cancelled["counts"] == {"succeeded": 1, "cancelled": 3} and cancelled["finished"]
+
+
+@pytest.mark.parametrize(("jobs", "processes"), [(1, 2), (7, 1), (1000, 2), (20_000, 8)])
+def test_messages_shrink_towards_the_end_and_carry_every_job_once(
+    jobs: int, processes: int
+) -> None:
+    sizes = shrinking_sizes(jobs, processes)
+    assert sum(sizes) == jobs and all(1 <= size <= 32 for size in sizes)
+    assert sizes == sorted(sizes, reverse=True)  # never a big message after a small one
+    assert sizes[-1] == 1  # the processes finish within one job of each other
