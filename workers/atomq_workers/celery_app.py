@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import os
 from functools import lru_cache
 
@@ -29,6 +30,10 @@ def engine() -> Engine:
 def _fresh_engine_per_child(**_kwargs: object) -> None:
     # Connections must not cross fork(); each prefork child opens its own.
     engine.cache_clear()
+    # Everything imported so far (Celery, SQLAlchemy, ASE, the backends) lives as long as
+    # the process: out of the collector's sight, full collections during a calculation
+    # no longer walk it again and again.
+    gc.freeze()
 
 
 _heartbeat: WorkerHeartbeat | None = None
