@@ -12,6 +12,7 @@ from ase.calculators.emt import EMT
 from ase.optimize import BFGS
 
 from atomq import Relax, SinglePoint
+from atomq_service.batches import shrinking_sizes
 from tests.stack.conftest import Stack
 from tests.stack.test_cli import atomq
 from tests.stack.test_registry_and_workers import eventually
@@ -41,9 +42,13 @@ def test_batch_results_equal_ase_in_submission_order(redis_stack: Stack) -> None
         assert ours.get_potential_energy() == atoms.get_potential_energy()
         np.testing.assert_array_equal(ours.get_forces(), atoms.get_forces())
         np.testing.assert_array_equal(ours.positions, atoms.positions)
-    # One worker process with one child: 40 jobs / (4 x 1) = 10 jobs per message.
+    # One worker process with one child: messages of 5, 5, 4, ... jobs, shrinking to one
+    # job each at the end (a one-job message goes as run_job).
+    sizes = shrinking_sizes(40, 1)
     log = (redis_stack.log_dir / "worker-1.log").read_text()
-    assert log.count("atomq.run_jobs") >= 4 and "atomq.run_job[" not in log
+    received = [line for line in log.splitlines() if "received" in line]
+    assert sum("Task atomq.run_jobs[" in line for line in received) == sum(s > 1 for s in sizes)
+    assert sum("Task atomq.run_job[" in line for line in received) == sizes.count(1)
     assert len({redis_stack.worker_of(job.id) for job in batch.jobs()}) == 1
 
 
