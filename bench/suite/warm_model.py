@@ -93,7 +93,7 @@ def run(stack: Stack, options: Options) -> list[Entry]:
         worker = stack.start_worker([CALCULATOR], 1)
         try:
             stack.wait_for_worker(CALCULATOR, timeout_s=300)
-            walls, runs = [], []
+            walls, runs, computes = [], [], []
             for seed in range(1, 2 + WARM_CALLS):
                 start = time.perf_counter()
                 job = client.submit(cu64(seed), SinglePoint(), calculator=CALCULATOR)
@@ -102,6 +102,7 @@ def run(stack: Stack, options: Options) -> list[Entry]:
                 info = job.info()
                 assert info.started_at is not None and info.finished_at is not None
                 runs.append((info.finished_at - info.started_at).total_seconds())
+                computes.append(job.provenance().compute_s or 0.0)
         finally:
             stop_process(worker)  # its model takes memory the other benchmarks need
             stack.worker_processes.remove(worker)
@@ -129,6 +130,12 @@ def run(stack: Stack, options: Options) -> list[Entry]:
                 "second_call_s": walls[1],
                 "warm_calls_median_s": warm_s,
                 "worker_run_s (claim to result, each call)": runs,
+                # The same call's own compute, timed in the worker: what the service adds
+                # to a warm call, free of the noise between two processes' runs.
+                "worker_compute_s (each call)": computes,
+                "warm_calls_over_their_own_compute (median)": statistics.median(
+                    wall / compute for wall, compute in zip(walls[1:], computes[1:], strict=True)
+                ),
                 "reference_load_s": reference["load_s"],
                 "reference_first_call_s": reference["first_call_s"],
                 "reference_median_call_s": compute_s,
