@@ -10,6 +10,8 @@ expire objects on commit so no hidden refresh queries run afterwards.
 
 from __future__ import annotations
 
+import json
+import re
 from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
@@ -23,7 +25,7 @@ from sqlmodel import Session, SQLModel
 def make_engine(url: str, pooled: bool = True) -> Engine:
     """pooled=False opens a connection per transaction and keeps none between them (for a
     thread in a process that forks: no open connection may be copied into a child)."""
-    json_columns = {"json_serializer": json_text, "json_deserializer": orjson.loads}
+    json_columns = {"json_serializer": json_text, "json_deserializer": json_value}
     pool: dict[str, Any] = {"pool_size": 20} if pooled else {"poolclass": NullPool}
     if url.startswith("sqlite"):
         engine = create_engine(
@@ -54,7 +56,24 @@ def json_text(value: Any) -> str:
     """JSON columns as orjson writes them: about fifteen times faster than json.dumps on
     the float-heavy structures and results every job stores, with the same numbers read
     back (shortest round-trip floats). Integer keys become strings, as with json.dumps."""
-    return orjson.dumps(value, option=orjson.OPT_NON_STR_KEYS).decode()
+    try:
+        return orjson.dumps(value, option=orjson.OPT_NON_STR_KEYS).decode()
+    except TypeError:  # an integer beyond 64 bits (atoms.info may hold one): Python's own
+        return json.dumps(value)
+
+
+# A run of 19 digits: an integer that may lie beyond 64 bits (no float's shortest form has
+# one). orjson would read it as a float, silently; Python's json keeps it exact.
+_LONG_DIGITS = re.compile(r"\d{19}")
+_LONG_DIGITS_BYTES = re.compile(rb"\d{19}")
+
+
+def json_value(text: str | bytes) -> Any:
+    """JSON columns read with orjson, unless the text may hold an integer beyond 64 bits."""
+    pattern = _LONG_DIGITS_BYTES if isinstance(text, bytes) else _LONG_DIGITS
+    if pattern.search(text):  # type: ignore[arg-type]
+        return json.loads(text)
+    return orjson.loads(text)
 
 
 def create_schema(engine: Engine) -> None:

@@ -40,6 +40,7 @@ from atomq_service.models import Calculator
 from atomq_service.models import Job as JobRow
 from atomq_service.registry import register
 from atomq_service.users import issue_token
+from atomq_workers.execute import run_job
 from tests.conftest import App
 
 # Fcc copper, a = 3.615 Angstrom at room temperature (Kittel, Introduction to Solid State
@@ -721,3 +722,14 @@ def test_client_reports_missing_job_and_bad_token(app: App, client: Client) -> N
         pytest.raises(AuthenticationFailed, match="unknown token"),
     ):
         stranger.jobs()
+
+
+def test_integers_beyond_64_bits_in_info_are_stored_and_returned_exactly(app: App) -> None:
+    # JSON columns are written with orjson, which refuses integers past 64 bits; such a
+    # value in atoms.info must still travel (Python's json takes it), not fail the job.
+    big = 10**30 + 7
+    job_id = submit(app, job_body(structure(info={"sample_id": big})))["id"]
+    assert run_job(app.engine, job_id, app.settings).state == "succeeded"
+    result = app.http.get(f"/v1/jobs/{job_id}/result", headers=app.headers)
+    assert result.status_code == 200
+    assert json.loads(result.content)["structure"]["info"] == {"sample_id": big}
