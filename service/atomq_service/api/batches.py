@@ -22,6 +22,7 @@ from atomq_service.api.deps import (
     IdempotencyKey,
     SessionDep,
     SettingsDep,
+    WaitSeconds,
 )
 from atomq_service.errors import ApiError
 from atomq_service.reconciler import mark_dispatched
@@ -94,9 +95,7 @@ async def wait_for_batch(
     _user: CurrentUser,
     session: SessionDep,
     request: Request,
-    timeout_s: Annotated[
-        float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
-    ] = 10.0,
+    timeout_s: WaitSeconds = 10.0,
 ) -> BatchPublic:
     """The batch once every job has finished, or as it is after `timeout_s`: one request
     instead of polling, and the end heard within milliseconds."""

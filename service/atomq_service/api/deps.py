@@ -6,7 +6,7 @@ from collections.abc import Iterator
 from datetime import UTC, datetime
 from typing import Annotated, Any
 
-from fastapi import Depends, Header, Path, Request
+from fastapi import Depends, Header, Path, Query, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from pydantic import BaseModel
 from sqlmodel import Session, select
@@ -123,3 +123,7 @@ ERROR_RESPONSES: dict[int | str, dict[str, Any]] = {
         429: "Too many requests or queued jobs",
     }.items()
 }
+# How long a waiting route (/wait, /result?wait_s=) may hold a request before it answers.
+WaitSeconds = Annotated[
+    float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
+]

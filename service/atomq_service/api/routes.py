@@ -27,6 +27,7 @@ from atomq_service.api.deps import (
     Label,
     SessionDep,
     SettingsDep,
+    WaitSeconds,
 )
 from atomq_service.errors import ApiError
 from atomq_service.models import Calculator, Job
@@ -135,11 +136,6 @@ def list_jobs(
 @router.get("/jobs/{job_id}", tags=["jobs"])
 def get_job(job_id: JobId, _user: CurrentUser, session: SessionDep) -> JobPublic:
     return jobs.to_public(session, [jobs.get_job(session, job_id)])[0]
-
-
-WaitSeconds = Annotated[
-    float, Query(ge=0, le=60, description="Longest wait in seconds; then it answers.")
-]
 
 
 @router.get("/jobs/{job_id}/wait", tags=["jobs"])
