@@ -25,8 +25,8 @@ from fastapi import FastAPI
 
 from atomq import Client
 from atomq_service.app import create_app
-from atomq_service.db import create_schema
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.settings import Settings
 from atomq_service.users import add_user
 from atomq_workers import execute
@@ -82,7 +82,7 @@ class InProcessService:
 
     def __enter__(self) -> InProcessService:
         # What the app's lifespan does, less the reconciler (turned off above).
-        create_schema(self.engine)
+        prepare_schema(self.engine)
         seed_defaults(self.engine)
         anyio.to_thread.run_sync = _inline  # type: ignore[assignment]
         token = add_user(self.engine, "bench-profiler", role="member")

@@ -18,9 +18,10 @@ from sqlalchemy import Engine, event, insert, text
 from sqlmodel import select
 
 from atomq import MD, Relax, SinglePoint, Structure
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
 from atomq_service.models import Calculator, Job, JobTag, User, utcnow
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_workers.main import register_shipped
 from suite import profiling
 from suite.harness import POSTGRES_ADMIN_URL, Entry, Options, Stack, not_available, summary
@@ -88,7 +89,7 @@ def _weighted(rng: np.random.Generator, shares: dict[str, float], n: int) -> lis
 def fill(engine: Engine, n: int, seed: int = 11) -> dict[str, Any]:
     """Write `n` jobs of a lab's history straight into the tables, in bulk."""
     rng = np.random.default_rng(seed)
-    create_schema(engine)
+    prepare_schema(engine)
     seed_defaults(engine)
     register_shipped(engine)  # the ML versions a worker with sevenn and chgnet registers
     with engine.begin() as connection:

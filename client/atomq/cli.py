@@ -49,10 +49,14 @@ def _add_server_options(parser: argparse.ArgumentParser) -> None:
 def cmd_serve(args: argparse.Namespace) -> int:
     settings = _server_settings(args)
     from atomq_service.embedded import EmbeddedStack
+    from atomq_service.schema import SchemaError
     from atomq_service.settings import hide_password
 
     stack = EmbeddedStack(settings, host=args.host, port=args.port, workers=args.workers)
-    stack.start()
+    try:
+        stack.start()
+    except SchemaError as exc:
+        raise SystemExit(f"atomq serve: {exc}") from exc
     print(f"atomq is serving on {stack.url} with {args.workers} worker process(es)")
     print(f"database: {hide_password(stack.settings.resolved_database_url)}")
     print(f"broker:   {hide_password(stack.settings.broker_url or '')}")
@@ -81,13 +85,17 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def cmd_users_add(args: argparse.Namespace) -> int:
     settings = _server_settings(args)
-    from atomq_service.db import create_schema, make_engine
+    from atomq_service.db import make_engine
+    from atomq_service.schema import SchemaError, prepare_schema
     from atomq_service.users import add_user
 
     if settings.database_url is None:
         settings.data_dir.mkdir(parents=True, exist_ok=True)
     engine = make_engine(settings.resolved_database_url)
-    create_schema(engine)
+    try:
+        prepare_schema(engine, settings)
+    except SchemaError as exc:
+        raise SystemExit(f"atomq users add: {exc}") from exc
     token = add_user(engine, args.name, role="admin" if args.admin else "member")
     print(token)
     print(f"(the token for {args.name}; it is shown only this once)", file=sys.stderr)
@@ -105,6 +113,47 @@ def cmd_verify(args: argparse.Namespace) -> int:
         print(f"artifact {p.artifact_id} ({p.name}) of job {p.job_id}: {p.problem}")
     print(f"checked {checked} artifacts: {len(problems)} do not match their records")
     return 1 if problems else 0
+
+
+def cmd_db(args: argparse.Namespace) -> int:
+    """Schema revisions and backups of the service's database (an admin's commands)."""
+    settings = _server_settings(args)
+    from atomq_service import schema
+    from atomq_service.db import make_engine
+    from atomq_service.settings import hide_password
+
+    if args.db_command == "history":
+        newest = schema.head()
+        for revision, description in schema.history():
+            marker = " (newest)" if revision == newest else ""
+            print(f"{revision}{marker}  {description.splitlines()[0] if description else ''}")
+        return 0
+    url = settings.resolved_database_url
+    if settings.database_url is None and not (settings.data_dir / "atomq.db").exists():
+        raise SystemExit(
+            f"atomq db: no database in {settings.data_dir}; pass --data-dir or --database"
+        )
+    try:
+        if args.db_command == "backup":
+            saved = schema.backup(url, Path(args.path))
+            print(f"backed up {hide_password(url)} to {saved}")
+            return 0
+        engine = make_engine(url)
+        try:
+            state = schema.current(engine)
+            if args.db_command == "current":
+                newest = schema.head()
+                print(f"{hide_password(url)}: {state.describe()} (this atomq's newest: {newest})")
+                return 0 if state.revision == newest else 1
+            if settings.database_url is None and not state.empty:
+                print(f"backed up to {schema.backup_beside(settings, state)}")
+            before, after = schema.upgrade(engine)
+            print(f"{hide_password(url)}: upgraded from {before} to revision {after}")
+            return 0
+        finally:
+            engine.dispose()
+    except schema.SchemaError as exc:
+        raise SystemExit(f"atomq db {args.db_command}: {exc}") from exc
 
 
 # -- client commands ----------------------------------------------------------
@@ -474,6 +523,24 @@ def build_parser() -> argparse.ArgumentParser:
     )
     _add_server_options(verify)
     verify.set_defaults(handler=cmd_verify)
+
+    db = commands.add_parser("db", help="the database's schema revision and backups (admin)")
+    db_commands = db.add_subparsers(dest="db_command", required=True)
+    for name, help_text in (
+        ("current", "the database's revision and this atomq's newest (exit 1 if they differ)"),
+        ("history", "every schema revision this atomq knows, oldest first"),
+        (
+            "upgrade",
+            "upgrade to this atomq's newest revision, in one transaction (SQLite: "
+            "after a backup in <data dir>/backups)",
+        ),
+        ("backup", "a consistent copy (SQLite: VACUUM INTO; PostgreSQL: pg_dump)"),
+    ):
+        sub = db_commands.add_parser(name, help=help_text)
+        _add_server_options(sub)
+        if name == "backup":
+            sub.add_argument("path", help="a new file for the copy")
+        sub.set_defaults(handler=cmd_db)
 
     users = commands.add_parser("users", help="manage users (on the server machine)")
     users_commands = users.add_subparsers(dest="users_command", required=True)

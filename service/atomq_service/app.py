@@ -17,11 +17,12 @@ from atomq_service.api.batches import router as batches_router
 from atomq_service.api.comparisons import router as comparisons_router
 from atomq_service.api.limits import BodySizeLimit, GzipRequest, RateLimit
 from atomq_service.api.routes import public_router, router
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
 from atomq_service.errors import ApiError
 from atomq_service.messaging import Dispatcher
 from atomq_service.reconciler import run_forever
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.settings import Settings, get_settings
 
 # Responses from this size on are gzip-compressed for clients that accept it (a structure
@@ -37,7 +38,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        create_schema(engine)
+        # `atomq serve` upgrades its embedded default before the API starts; the API
+        # itself only creates an empty database and refuses one at another revision.
+        prepare_schema(engine, settings)
         seed_defaults(engine)
         reconciler = None
         if settings.reconcile_interval_s > 0 and settings.broker_url:

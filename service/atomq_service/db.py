@@ -19,7 +19,7 @@ from typing import Any
 import orjson
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.pool import NullPool
-from sqlmodel import Session, SQLModel
+from sqlmodel import Session
 
 
 def make_engine(url: str, pooled: bool = True) -> Engine:
@@ -74,12 +74,6 @@ def json_value(text: str | bytes) -> Any:
     if pattern.search(text):  # type: ignore[arg-type]
         return json.loads(text)
     return orjson.loads(text)
-
-
-def create_schema(engine: Engine) -> None:
-    from atomq_service import models  # noqa: F401  (registers the tables)
-
-    SQLModel.metadata.create_all(engine)
 
 
 @contextmanager

@@ -26,9 +26,10 @@ from sqlalchemy import Engine
 from sqlmodel import select
 
 from atomq.config import config_path, write_client_config
-from atomq_service.db import create_schema, make_engine, transaction
+from atomq_service.db import make_engine, transaction
 from atomq_service.models import ApiToken
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.settings import Settings
 from atomq_service.users import add_user, hash_token
 
@@ -156,12 +157,23 @@ class EmbeddedStack:
     def start(self) -> None:
         settings = self.settings
         settings.data_dir.mkdir(parents=True, exist_ok=True)
+        # Before anything starts: a database that cannot be used stops here, leaving
+        # nothing running. The embedded default is backed up and upgraded in place.
+        engine = make_engine(settings.resolved_database_url)
+        try:
+            prepare_schema(
+                engine,
+                settings,
+                auto_upgrade=settings.database_url is None,
+                announce=lambda line: print(line, file=sys.stderr),
+            )
+        finally:
+            engine.dispose()
         if not settings.broker_url:
             self.broker = EmbeddedBroker(settings.data_dir)
             settings = settings.model_copy(update={"broker_url": self.broker.start()})
             self.settings = settings
         engine = make_engine(settings.resolved_database_url)
-        create_schema(engine)
         seed_defaults(engine)
         self.token = local_token(engine, self.url)
         engine.dispose()

@@ -121,6 +121,9 @@ class Job(SQLModel, table=True):
     natoms: int
     formula: str
     input_hash: str = Field(index=True)
+    # The canonical form the hash was computed over (atomq.hashing): jobs recorded before
+    # hash versions existed read 1 and keep their hash; new jobs are written at 2.
+    hash_version: int = Field(default=2, sa_column_kwargs={"server_default": "1"})
     seed: int | None = Field(default=None, sa_type=BigInteger)
     parents: list[int] = Field(default_factory=list, sa_column=Column(JSON, nullable=False))
     time_limit_s: float

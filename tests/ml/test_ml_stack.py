@@ -18,10 +18,11 @@ from ase.optimize import BFGS
 from sqlmodel import select
 
 from atomq import CellRelax, Relax
-from atomq_service.db import create_schema, make_engine, transaction
+from atomq_service.db import make_engine, transaction
 from atomq_service.models import Calculator as CalculatorRecord
 from atomq_service.models import JobAttempt
 from atomq_service.registry import register
+from atomq_service.schema import prepare_schema
 from atomq_workers.backends_ml import SEVENN_BACKEND, shipped_checkpoints
 from atomq_workers.calculators import CalculatorCache, why_not_runnable
 from atomq_workers.main import register_shipped
@@ -208,7 +209,7 @@ def test_model_cache_drops_the_least_recently_used_version_beyond_its_budget() -
 
 def test_shipped_versions_register_once_and_never_change(tmp_path: Path) -> None:
     engine = make_engine(f"sqlite:///{tmp_path / 'registry.db'}")
-    create_schema(engine)
+    prepare_schema(engine)
     added = register_shipped(engine)
     # Reference: what the installed packages hold, listed without the registry.
     expected = {c.ref for c in shipped_checkpoints()} | {GFN2, GFN2.replace("gfn2", "gfn1")}

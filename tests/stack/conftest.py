@@ -21,10 +21,11 @@ from sqlmodel import Session, select
 
 from atomq import Client, SinglePoint, Structure
 from atomq.hashing import input_hash
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
 from atomq_service.embedded import api_command
 from atomq_service.models import Job, User
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.users import add_user
 from tests.conftest import free_port
 
@@ -128,7 +129,7 @@ def start_stack(tmp_path: Path, database_url: str, broker_url: str, workers: int
     data_dir = tmp_path / "data"
     data_dir.mkdir(exist_ok=True)
     engine = make_engine(database_url)
-    create_schema(engine)
+    prepare_schema(engine)
     seed_defaults(engine)
     token = add_user(engine, "grace-member", role="member")
     port = free_port()

@@ -20,10 +20,11 @@ from sqlalchemy import func
 from sqlmodel import Session, select
 
 from atomq import JobCreate, SinglePoint, Structure
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
 from atomq_service.embedded import api_command
 from atomq_service.models import Job
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.users import add_user
 from tests.conftest import free_port
 
@@ -35,7 +36,7 @@ SUBMISSIONS = 200
 def test_concurrent_posts_to_two_api_processes_all_land(tmp_path: Path, redis_url: str) -> None:
     database_url = f"sqlite:///{tmp_path / 'atomq.db'}"
     engine = make_engine(database_url)
-    create_schema(engine)
+    prepare_schema(engine)
     seed_defaults(engine)
     token = add_user(engine, "ines-member")
     port = free_port()

@@ -29,10 +29,11 @@ from ase.build import bulk
 from sqlmodel import Session, select
 
 from atomq import MD, NEB, Client, JobState, Relax, SinglePoint
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
 from atomq_service.embedded import api_command
 from atomq_service.models import Artifact, Job, JobAttempt, JobResult
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.users import add_user
 from tests.conftest import free_port, unavailable
 
@@ -237,7 +238,7 @@ def test_nothing_lost_nothing_run_twice(
         else request.getfixturevalue("postgres_url")
     )
     engine = make_engine(url)
-    create_schema(engine)
+    prepare_schema(engine)
     seed_defaults(engine)
     token = add_user(engine, "faults-member")
     rng = random.Random(20261202)

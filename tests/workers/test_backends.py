@@ -57,12 +57,13 @@ def test_seeded_argon_is_within_one_percent_of_the_lattice_sum() -> None:
 def test_a_worker_does_not_advertise_a_backend_whose_packages_are_missing(tmp_path) -> None:
     from importlib.util import find_spec
 
-    from atomq_service.db import create_schema, make_engine, transaction
+    from atomq_service.db import make_engine, transaction
     from atomq_service.registry import register, seed_defaults
+    from atomq_service.schema import prepare_schema
     from atomq_workers.main import runnable_calculators
 
     engine = make_engine(f"sqlite:///{tmp_path / 'atomq.db'}")
-    create_schema(engine)
+    prepare_schema(engine)
     seed_defaults(engine)
     with transaction(engine) as session:
         register(

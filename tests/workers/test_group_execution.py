@@ -13,9 +13,10 @@ from sqlmodel import Session, col, select
 
 from atomq import SinglePoint, Structure
 from atomq.hashing import input_hash
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
 from atomq_service.models import Job, JobAttempt, JobPackage, JobResult
 from atomq_service.registry import seed_defaults
+from atomq_service.schema import prepare_schema
 from atomq_service.settings import Settings
 from atomq_service.users import add_user
 from atomq_workers.execute import claim_group, compute, finish_group, run_single_points
@@ -33,7 +34,7 @@ def cells(count: int) -> list:  # type: ignore[type-arg]
 def setup(tmp_path: Path, structures: list, kind_of: list[str] | None = None):  # type: ignore[no-untyped-def, type-arg]
     settings = Settings(data_dir=tmp_path, broker_url="memory://")
     engine = make_engine(settings.resolved_database_url)
-    create_schema(engine)
+    prepare_schema(engine)
     seed_defaults(engine)
     add_user(engine, "hana")
     with Session(engine) as session:

@@ -11,7 +11,8 @@ import sqlite3
 import time
 from pathlib import Path
 
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
+from atomq_service.schema import prepare_schema
 from atomq_workers.heartbeat import WorkerHeartbeat
 
 
@@ -31,7 +32,7 @@ def child_can_write(path: Path) -> bool:
 def test_children_forked_while_the_heartbeat_runs_can_always_write(tmp_path: Path) -> None:
     path = tmp_path / "atomq.db"
     engine = make_engine(f"sqlite:///{path}", pooled=False)
-    create_schema(engine)
+    prepare_schema(engine)
     heartbeat = WorkerHeartbeat(engine, "atomq-test@host", interval_s=0.0005)
     heartbeat.start()
     try:

@@ -9,13 +9,14 @@ from types import SimpleNamespace
 import pytest
 
 from atomq.jobs import JobState
-from atomq_service.db import create_schema, make_engine
+from atomq_service.db import make_engine
+from atomq_service.schema import prepare_schema
 from atomq_workers.execute import ProgressWriter, Stop, Superseded
 
 
 def writer(tmp_path: Path, *, time_limit_s: float = 3600.0, **lease: bool) -> ProgressWriter:
     engine = make_engine(f"sqlite:///{tmp_path / 'atomq.db'}")
-    create_schema(engine)
+    prepare_schema(engine)
     # The lease's two flags are what the heartbeat thread reports; set them directly here.
     flags = SimpleNamespace(
         lost=lease.get("lost", False), cancel_requested=lease.get("cancel", False)

@@ -12,10 +12,11 @@ import sys
 from sqlalchemy import Engine
 from sqlmodel import select
 
-from atomq_service.db import create_schema, make_engine, transaction
+from atomq_service.db import make_engine, transaction
 from atomq_service.messaging import queue_name
 from atomq_service.models import Calculator
 from atomq_service.registry import register, seed_defaults
+from atomq_service.schema import SchemaError, prepare_schema
 from atomq_service.settings import Settings
 from atomq_workers.backends_ml import shipped_checkpoints, tblite_records
 from atomq_workers.calculators import why_not_runnable
@@ -114,7 +115,10 @@ def run_worker(
     if settings.database_url is None:
         settings.data_dir.mkdir(parents=True, exist_ok=True)
     engine = make_engine(settings.resolved_database_url)
-    create_schema(engine)
+    try:
+        prepare_schema(engine, settings)  # never upgrades: that is `atomq serve` or an admin
+    except SchemaError as exc:
+        raise SystemExit(f"atomq worker: {exc}") from exc
     seed_defaults(engine)
     for ref in register_shipped(engine):
         print(f"atomq worker: registered {ref}, shipped with an installed package", file=sys.stderr)
