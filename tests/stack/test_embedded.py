@@ -17,6 +17,8 @@ from ase.build import bulk
 from ase.calculators.emt import EMT
 
 from atomq import Client, SinglePoint
+from atomq.results import Provenance
+from atomq_service.db import make_engine
 from tests.conftest import free_port
 
 pytestmark = pytest.mark.stack
@@ -120,3 +122,52 @@ def test_sql_broker_fallback_runs_jobs(tmp_path: Path) -> None:
         result = client.submit(atoms, SinglePoint(), calculator="emt").result(timeout=120)
     # Reference: ASE's EMT in this process.
     assert result.energy == reference.get_potential_energy()
+
+
+def test_serve_upgrades_an_old_data_dir_after_a_backup(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """A data directory written by atomq at 780447e (the committed fixture, before schema
+    revisions): `atomq serve` backs it up, upgrades it and serves its old jobs, their
+    provenance and their files as they were; new jobs run beside them."""
+    import shutil
+    import sqlite3
+
+    from atomq_service.embedded import EmbeddedStack
+    from atomq_service.settings import Settings
+    from atomq_service.verify import verify_artifacts
+
+    fixture = Path(__file__).parents[1] / "fixtures" / "pre_migration"
+    data_dir = tmp_path / "old-lab"
+    data_dir.mkdir()
+    shutil.copy(fixture / "atomq.db", data_dir / "atomq.db")
+    shutil.copytree(fixture / "artifacts", data_dir / "artifacts")
+    with sqlite3.connect(fixture / "atomq.db") as old:
+        stored_provenance = dict(old.execute("SELECT job_id, provenance FROM jobresult"))
+
+    settings = Settings(data_dir=data_dir)
+    with (
+        EmbeddedStack(settings, port=free_port(), workers=1, quiet=True) as stack,
+        Client(stack.url, stack.token) as client,
+    ):
+        told = capsys.readouterr().err
+        assert "atomq: database backed up to" in told and "upgraded from" in told, told
+        assert client.jobs(limit=100).total == 14
+        for job_id, text in stored_provenance.items():
+            assert client.job(job_id).provenance() == Provenance.model_validate_json(text)
+        frames = client.job(3).trajectory()  # the old MD run's file, checked by its sha256
+        assert len(frames) == 5
+        atoms = bulk("Ni", "fcc", a=3.52)
+        result = client.submit(atoms, SinglePoint(), calculator="emt").result(timeout=120)
+        reference = atoms.copy()
+        reference.calc = EMT()
+        assert result.energy == reference.get_potential_energy()  # ASE in this process
+    checked, problems = verify_artifacts(make_engine(settings.resolved_database_url),
+                                         settings.artifacts_dir)  # fmt: skip
+    assert checked >= 5 and problems == []
+    (backup,) = (data_dir / "backups").iterdir()
+    with sqlite3.connect(backup) as copy:
+        assert dict(copy.execute("SELECT job_id, provenance FROM jobresult")) == stored_provenance
+        assert "alembic_version" not in {
+            n for (n,) in copy.execute("SELECT name FROM sqlite_master")
+        }
