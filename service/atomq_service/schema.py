@@ -294,3 +294,15 @@ def model_differences(connection: Connection) -> list[Any]:
         connection, opts={"compare_type": compare_type, "compare_server_default": True}
     )
     return list(compare_metadata(context, SQLModel.metadata))
+
+
+def write_revision(message: str, revision_id: str) -> None:
+    """For developers: write the next revision with Alembic's autogenerate, comparing the
+    models with a scratch database built by the existing revisions. Read and tidy what it
+    writes (data migrations are never guessed)."""
+    scratch = create_engine("sqlite://")
+    with scratch.begin() as connection:
+        command.upgrade(_config(connection), "head")
+        command.revision(
+            _config(connection), message=message, autogenerate=True, rev_id=revision_id
+        )
