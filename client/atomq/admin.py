@@ -65,3 +65,31 @@ class CalculatorCreate(BaseModel):
         pattern=r"^[0-9a-f]{64}$",
         description="Optional: the sha256 you expect; registration is refused if the file differs.",
     )
+
+
+class DefaultVersionSet(BaseModel):
+    """An admin's decision: a bare calculator name now means this version."""
+
+    model_config = ConfigDict(extra="forbid")
+    version: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.-]+$")
+    reason: str = Field(default="", max_length=4000, pattern=r"^[^\x00]*$")
+
+
+class CalculatorRetire(BaseModel):
+    """Retire a version; retiring a name's default names the new default too."""
+
+    model_config = ConfigDict(extra="forbid")
+    new_default: str | None = Field(
+        default=None, min_length=1, max_length=64, pattern=r"^[A-Za-z0-9_.-]+$"
+    )
+
+
+class DefaultVersionPublic(BaseModel):
+    """One recorded decision of what a bare name means."""
+
+    name: str
+    version: str
+    ref: str
+    set_by: str | None = Field(description="The admin; none where atomq set it itself.")
+    reason: str
+    set_at: datetime

@@ -212,6 +212,7 @@ def cmd_submit(args: argparse.Namespace) -> int:
                 atoms, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
             )
             print(job.id)
+            _say_pinned(args.calculator, job)
             if args.wait:
                 _report_when_done(job)
     return 0
@@ -241,9 +242,17 @@ def cmd_submit_neb(args: argparse.Namespace) -> int:
             None, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
         )
         print(job.id)
+        _say_pinned(args.calculator, job)
         if args.wait:
             _report_when_done(job)
     return 0
+
+
+def _say_pinned(asked: str, job: Job) -> None:
+    """On stderr (stdout keeps the bare ids for scripts): the exact version that runs."""
+    pinned = job.calculator
+    if "@" not in asked:
+        print(f"job {job.id}: {asked!r} pinned to {pinned}, its default version", file=sys.stderr)
 
 
 def _report_when_done(job: Job) -> None:
@@ -407,7 +416,7 @@ def cmd_calculators(args: argparse.Namespace) -> int:
     with _client(args) as client:
         calculators = client.calculators()
     for c in calculators:
-        status = "retired" if c.retired else "active"
+        status = "retired" if c.retired else ("default" if c.is_default else "active")
         where = ", ".join(c.workers) if c.workers else "no live worker"
         print(
             f"{c.ref:<28} {status:<8} backend={c.backend:<14} jobs={c.jobs_run:<6} workers: {where}"
@@ -418,7 +427,8 @@ def cmd_calculators(args: argparse.Namespace) -> int:
 def cmd_calculators_show(args: argparse.Namespace) -> int:
     with _client(args) as client:
         c = client.calculator(args.ref)
-    print(f"{c.ref}  ({'retired' if c.retired else 'active'})")
+    state = "retired" if c.retired else "active"
+    print(f"{c.ref}  ({state}{f', the default version of {c.name}' if c.is_default else ''})")
     print(f"  backend     {c.backend}")
     print(f"  parameters  {json.dumps(c.parameters, sort_keys=True)}")
     weights = c.weights_path or ("shipped in the backend's package" if c.weights_sha256 else "")
@@ -468,8 +478,23 @@ def cmd_calculators_add(args: argparse.Namespace) -> int:
 
 def cmd_calculators_retire(args: argparse.Namespace) -> int:
     with _client(args) as client:
-        c = client.retire_calculator(args.ref)
+        c = client.retire_calculator(args.ref, new_default=args.new_default)
     print(f"retired {c.ref}: new jobs are refused; its {c.jobs_run} jobs keep their records")
+    if args.new_default:
+        print(f"'{c.name}' now means {c.name}@{args.new_default}")
+    return 0
+
+
+def cmd_calculators_default(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        if args.ref is None:
+            for decision in client.default_history(args.name):
+                who = decision.set_by or "atomq"
+                print(f"{decision.set_at:%Y-%m-%d %H:%M} UTC  {decision.ref:<28} by {who}: "
+                      f"{decision.reason}")  # fmt: skip
+            return 0
+        c = client.set_default_version(f"{args.name}@{args.ref}", reason=args.reason)
+    print(f"'{c.name}' now means {c.ref}; jobs that name a version are unaffected")
     return 0
 
 
@@ -661,10 +686,20 @@ def build_parser() -> argparse.ArgumentParser:
     add.add_argument("--notes", default="", help="free text: source, training set, caveats")
     retire = calculator_commands.add_parser("retire", help="admin: refuse new jobs for it")
     retire.add_argument("ref", help="name@version")
+    retire.add_argument(
+        "--new-default", metavar="VERSION", help="needed when retiring the name's default version"
+    )
+    default = calculator_commands.add_parser(
+        "default", help="the decisions of what a bare name means; admin: set a new one"
+    )
+    default.add_argument("name", help="a calculator name, e.g. emt")
+    default.add_argument("ref", nargs="?", metavar="VERSION", help="admin: make this the default")
+    default.add_argument("--reason", default="", help="recorded with the decision")
     for sub, handler in (
         (show, cmd_calculators_show),
         (add, cmd_calculators_add),
         (retire, cmd_calculators_retire),
+        (default, cmd_calculators_default),
     ):
         sub.add_argument("--url", help=argparse.SUPPRESS)
         sub.add_argument("--token", help=argparse.SUPPRESS)

@@ -21,7 +21,7 @@ from ase.calculators.singlepoint import SinglePointCalculator
 from pydantic import TypeAdapter
 
 from atomq import config
-from atomq.admin import CalculatorCreate
+from atomq.admin import CalculatorCreate, CalculatorRetire, DefaultVersionPublic, DefaultVersionSet
 from atomq.batches import BatchCreate, BatchItem, BatchPublic, BatchResults
 from atomq.bulk import collector_paused
 from atomq.comparisons import Comparison, ComparisonCreate, ComparisonPublic
@@ -273,11 +273,28 @@ class Client:
         response = self.request("POST", "/v1/calculators", json=record.model_dump(mode="json"))
         return CalculatorPublic.model_validate_json(response.content)
 
-    def retire_calculator(self, ref: str) -> CalculatorPublic:
-        """Admin: refuse new jobs for this version; its records and results stay."""
+    def retire_calculator(self, ref: str, new_default: str | None = None) -> CalculatorPublic:
+        """Admin: refuse new jobs for this version; its records and results stay. Retiring
+        a name's default version needs `new_default`, the version the name means next."""
         name, version = _split_ref(ref)
-        response = self.request("POST", f"/v1/calculators/{name}/{version}/retire")
+        body = CalculatorRetire(new_default=new_default)
+        response = self.request(
+            "POST", f"/v1/calculators/{name}/{version}/retire", json=body.model_dump()
+        )
         return CalculatorPublic.model_validate_json(response.content)
+
+    def set_default_version(self, ref: str, reason: str = "") -> CalculatorPublic:
+        """Admin: a bare name ('emt') means this version ('emt@2') from now on. Recorded
+        with who and when; registering a version never changes the default."""
+        name, version = _split_ref(ref)
+        body = DefaultVersionSet(version=version, reason=reason)
+        response = self.request("PUT", f"/v1/defaults/{name}", json=body.model_dump())
+        return CalculatorPublic.model_validate_json(response.content)
+
+    def default_history(self, name: str) -> list[DefaultVersionPublic]:
+        """Every decision of what a bare calculator name meant, oldest first."""
+        response = self.request("GET", f"/v1/defaults/{name}")
+        return [DefaultVersionPublic.model_validate(item) for item in response.json()]
 
 
 # Request bodies from this size on travel gzip-compressed (level 1: JSON numbers shrink
@@ -455,6 +472,12 @@ class Job:
 
     def status(self) -> JobState:
         return self.info().state
+
+    @property
+    def calculator(self) -> str:
+        """The exact name@version this job runs with, pinned at submission (a bare name
+        means its default version at that moment)."""
+        return (self._info or self.info()).calculator
 
     def wait(
         self,

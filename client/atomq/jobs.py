@@ -142,6 +142,9 @@ class CalculatorPublic(BaseModel):
     weights_size: int | None = None
     notes: str
     retired: bool
+    is_default: bool = Field(
+        default=False, description="What the bare name means now (an admin's decision)."
+    )
     jobs_run: int = Field(default=0, description="Jobs this version has run (attempted).")
     workers: list[str] = Field(
         default_factory=list, description="Live workers that can run this version now."

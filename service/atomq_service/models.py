@@ -82,6 +82,23 @@ class Calculator(SQLModel, table=True):
         return f"{self.name}@{self.version}"
 
 
+class DefaultVersion(SQLModel, table=True):
+    """Which version a bare calculator name means: one row per decision, never edited; the
+    newest row of a name is in force. Registering a version never adds one, except for the
+    first version of a name."""
+
+    # The decision in force for a name: the last row of that name, an index range.
+    __table_args__ = (Index("ix_defaultversion_name_id", "name", "id"),)
+
+    id: int | None = Field(default=None, primary_key=True)
+    name: str
+    calculator_id: int = Field(foreign_key="calculator.id")
+    # The admin who decided; none where atomq set it (a name's first version, an upgrade).
+    set_by_id: int | None = Field(default=None, foreign_key="user.id")
+    reason: str = ""
+    set_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+
+
 class Batch(SQLModel, table=True):
     """Structures submitted together with one task and calculator; each is a Job."""
 

@@ -16,10 +16,11 @@ from ase.data import chemical_symbols
 from sqlalchemy import Engine, func
 from sqlmodel import Session, col, select
 
+from atomq.admin import DefaultVersionPublic
 from atomq.jobs import CalculatorPublic
 from atomq_service.db import transaction
 from atomq_service.errors import ApiError
-from atomq_service.models import Calculator, Job
+from atomq_service.models import Calculator, DefaultVersion, Job, User
 from atomq_service.presence import live_workers
 
 ALL_ELEMENTS: list[str] = list(chemical_symbols[1:119])  # H .. Og
@@ -86,11 +87,12 @@ def seed_defaults(engine: Engine) -> None:
                 )
             ).first()
             if exists is None:
-                session.add(Calculator(**record))
+                register(session, **record)
 
 
 def register(session: Session, **record: Any) -> Calculator:
-    """Add a new immutable version; an existing name@version is never changed."""
+    """Add a new immutable version; an existing name@version is never changed. The first
+    version of a name becomes its default; later ones never change the default."""
     exists = session.exec(
         select(Calculator).where(
             Calculator.name == record["name"], Calculator.version == record["version"]
@@ -109,14 +111,92 @@ def register(session: Session, **record: Any) -> Calculator:
     calculator = Calculator(**record)
     session.add(calculator)
     session.flush()
+    if default_version(session, calculator.name) is None:
+        record_default(session, calculator, None, "the first version registered of this name")
     return calculator
 
 
+def default_version(session: Session, name: str) -> Calculator | None:
+    """The version a bare name means now (the newest decision), retired or not."""
+    found = session.exec(
+        select(Calculator)
+        .join(DefaultVersion, col(DefaultVersion.calculator_id) == col(Calculator.id))
+        .where(DefaultVersion.name == name)
+        .order_by(col(DefaultVersion.id).desc())
+        .limit(1)
+    ).first()
+    return found
+
+
+def record_default(
+    session: Session, calculator: Calculator, admin: User | None, reason: str
+) -> DefaultVersion:
+    assert calculator.id is not None
+    decision = DefaultVersion(
+        name=calculator.name,
+        calculator_id=calculator.id,
+        set_by_id=None if admin is None else admin.id,
+        reason=reason,
+    )
+    session.add(decision)
+    session.flush()
+    return decision
+
+
+def set_default(session: Session, name: str, version: str, admin: User, reason: str) -> Calculator:
+    """An admin's decision that a bare `name` now means `name@version` (an active one)."""
+    calculator = find(session, name, version)
+    if calculator.retired:
+        raise ApiError(
+            422,
+            "retired_calculator",
+            f"{calculator.ref} is retired and cannot be the default; choose an active version",
+        )
+    if (current := default_version(session, name)) is not None and current.id == calculator.id:
+        return calculator  # already in force: nothing to record
+    record_default(session, calculator, admin, reason)
+    return calculator
+
+
+def retire(session: Session, calculator: Calculator, admin: User, new_default: str | None) -> None:
+    """Refuse new jobs for a version. Retiring a name's default names its successor in the
+    same request, so a bare name never silently starts meaning another version."""
+    others = session.exec(
+        select(Calculator.version).where(
+            Calculator.name == calculator.name,
+            Calculator.retired == False,  # noqa: E712
+            Calculator.id != calculator.id,
+        )
+    ).all()
+    current = default_version(session, calculator.name)
+    is_default = current is not None and current.id == calculator.id
+    if new_default is not None:
+        if new_default == calculator.version:
+            raise ApiError(
+                422, "new_default_is_retiring", f"{calculator.ref} cannot succeed itself"
+            )
+        set_default(session, calculator.name, new_default, admin, f"{calculator.ref} retired")
+    elif is_default and others:
+        raise ApiError(
+            422,
+            "default_needs_successor",
+            f"{calculator.ref} is the default version of {calculator.name!r}; retiring it "
+            f"needs the new default in the same request (new_default: one of "
+            f"{', '.join(sorted(others))})",
+        )
+    calculator.retired = True
+    session.add(calculator)
+
+
 def resolve(session: Session, reference: str) -> Calculator:
-    """Pin 'name' to its newest active version, or find the exact 'name@version'."""
+    """Pin 'name' to its default version, or find the exact 'name@version'."""
     name, _, version = reference.partition("@")
+    if not version:
+        default = default_version(session, name)
+        if default is not None and not default.retired:
+            return default  # one indexed query on the submission path
     versions = session.exec(
-        select(Calculator).where(Calculator.name == name).order_by(Calculator.id.desc())  # type: ignore[union-attr]
+        select(Calculator).where(Calculator.name == name).order_by(col(Calculator.id).desc())
     ).all()
     if not versions:
         known = session.exec(select(Calculator.name).distinct()).all()
@@ -127,15 +207,15 @@ def resolve(session: Session, reference: str) -> Calculator:
         )
     active = [c for c in versions if not c.retired]
     if not version:
-        if not active:
-            raise ApiError(
-                422, "retired_calculator", f"every version of calculator {name!r} is retired"
-            )
-        return active[0]
+        raise ApiError(
+            422, "retired_calculator", f"every version of calculator {name!r} is retired"
+        )
     for calculator in versions:
         if calculator.version == version:
             if calculator.retired:
-                newer = f"; use {active[0].ref}" if active else ""
+                default = default_version(session, name)
+                instead = default if default is not None and not default.retired else None
+                newer = f"; use {instead.ref}" if instead is not None else ""
                 raise ApiError(
                     422,
                     "retired_calculator",
@@ -146,7 +226,8 @@ def resolve(session: Session, reference: str) -> Calculator:
         422,
         "unknown_calculator",
         f"calculator {name!r} has no version {version!r}; versions: "
-        + ", ".join(c.version for c in versions),
+        + ", ".join(c.version for c in versions)
+        + (f" (active: {', '.join(c.version for c in active)})" if active else ""),
     )
 
 
@@ -196,11 +277,13 @@ def to_public(session: Session, calculators: Sequence[Calculator]) -> list[Calcu
         ).all()
     )
     workers = live_workers(session)
+    defaults = default_ids(session, {c.name for c in calculators})
     return [
         CalculatorPublic.model_validate(
             {
                 **c.model_dump(),
                 "ref": c.ref,
+                "is_default": c.id in defaults,
                 "jobs_run": runs.get(c.id or 0, 0),
                 "workers": [w.name for w in workers if c.ref in w.calculators],
                 "unavailable": {
@@ -209,4 +292,42 @@ def to_public(session: Session, calculators: Sequence[Calculator]) -> list[Calcu
             }
         )
         for c in calculators
+    ]
+
+
+def default_ids(session: Session, names: set[str]) -> set[int]:
+    """The calculator ids in force as default for these names, in one query."""
+    newest = (
+        select(func.max(DefaultVersion.id))
+        .where(col(DefaultVersion.name).in_(names))
+        .group_by(col(DefaultVersion.name))
+    )
+    return set(
+        session.exec(
+            select(DefaultVersion.calculator_id).where(col(DefaultVersion.id).in_(newest))
+        ).all()
+    )
+
+
+def default_history(session: Session, name: str) -> list[DefaultVersionPublic]:
+    """Every decision about what `name` means, oldest first, with who made it."""
+    rows = session.exec(
+        select(DefaultVersion, Calculator, User)
+        .join(Calculator, col(Calculator.id) == col(DefaultVersion.calculator_id))
+        .join(User, col(User.id) == col(DefaultVersion.set_by_id), isouter=True)
+        .where(DefaultVersion.name == name)
+        .order_by(col(DefaultVersion.id))
+    ).all()
+    if not rows:
+        raise ApiError(404, "calculator_not_found", f"no calculator named {name!r}")
+    return [
+        DefaultVersionPublic(
+            name=decision.name,
+            version=calculator.version,
+            ref=calculator.ref,
+            set_by=None if user is None else user.name,
+            reason=decision.reason,
+            set_at=decision.set_at,
+        )
+        for decision, calculator, user in rows
     ]

@@ -48,6 +48,7 @@ def test_submit_list_show_fetch_cancel(redis_stack: Stack, tmp_path: Path) -> No
     assert len(ids) == 2
     assert submitted.stdout.count("succeeded") == 2
     assert "step" in submitted.stderr  # the progress bar
+    assert f"job {ids[0]}: 'emt' pinned to emt@1, its default version" in submitted.stderr
 
     jobs = atomq(redis_stack, "jobs", "--tag", "cli-study")
     assert jobs.returncode == 0, jobs.stderr

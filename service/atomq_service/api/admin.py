@@ -9,6 +9,9 @@ from sqlmodel import Session, col, select
 
 from atomq.admin import (
     CalculatorCreate,
+    CalculatorRetire,
+    DefaultVersionPublic,
+    DefaultVersionSet,
     TokenCreate,
     TokenIssued,
     TokenPublic,
@@ -120,14 +123,36 @@ def register_calculator(
 
 @router.post("/calculators/{name}/{version}/retire", tags=["calculators"])
 def retire_calculator(
-    name: Label, version: Label, _admin: CurrentAdmin, session: SessionDep
+    name: Label,
+    version: Label,
+    admin: CurrentAdmin,
+    session: SessionDep,
+    body: CalculatorRetire | None = None,
 ) -> CalculatorPublic:
     calculator = registry.find(session, name, version)
-    calculator.retired = True
-    session.add(calculator)
+    registry.retire(session, calculator, admin, body.new_default if body else None)
     public = registry.to_public(session, [calculator])[0]
     session.commit()
     return public
+
+
+@router.put("/defaults/{name}", tags=["calculators"])
+def set_default_version(
+    name: Label, body: DefaultVersionSet, admin: CurrentAdmin, session: SessionDep
+) -> CalculatorPublic:
+    """What a bare `name` means from now on; the decision is recorded with who made it."""
+    calculator = registry.set_default(session, name, body.version, admin, body.reason)
+    public = registry.to_public(session, [calculator])[0]
+    session.commit()
+    return public
+
+
+@router.get("/defaults/{name}", tags=["calculators"])
+def default_version_history(
+    name: Label, _user: CurrentUser, session: SessionDep
+) -> list[DefaultVersionPublic]:
+    """Every decision of what a bare `name` meant, oldest first."""
+    return registry.default_history(session, name)
 
 
 def _user(session: Session, name: str) -> User:
