@@ -24,6 +24,7 @@ from atomq_service.api.deps import (
     SettingsDep,
     WaitSeconds,
 )
+from atomq_service.api.idempotency import answer_once
 from atomq_service.errors import ApiError
 from atomq_service.reconciler import mark_dispatched
 
@@ -58,20 +59,24 @@ def create_batch(
 ) -> BatchPublic:
     """Every structure becomes a job with the same task and calculator version; all are
     recorded, or (when any structure is refused, named by its index) none."""
-    if idempotency_key is not None:
-        earlier = batches.find_by_idempotency_key(session, user, idempotency_key, body)
-        if earlier is not None:
-            return batches.to_public(session, earlier)
-    batch = batches.create_batch(session, user, body, settings, idempotency_key)
-    public = batches.to_public(session, batch)
-    queued = batches.queued_job_ids(session, batch)
-    sizes = batches.message_sizes(session, batch.calculator_ref, len(queued))
-    # Commit first, then wake workers; a message lost here is re-sent by the reconciler.
-    session.commit()
-    sent = dispatcher.send_many(queued, batch.calculator_ref, sizes)
-    if sent:
-        mark_dispatched(request.app.state.engine, sent)
-    return public
+
+    def earlier(key: str) -> BatchPublic | None:
+        found = batches.find_by_idempotency_key(session, user, key, body)
+        return None if found is None else batches.to_public(session, found)
+
+    def record() -> BatchPublic:
+        batch = batches.create_batch(session, user, body, settings, idempotency_key)
+        public = batches.to_public(session, batch)
+        queued = batches.queued_job_ids(session, batch)
+        sizes = batches.message_sizes(session, batch.calculator_ref, len(queued))
+        # Commit first, then wake workers; a message lost here is re-sent by the reconciler.
+        session.commit()
+        sent = dispatcher.send_many(queued, batch.calculator_ref, sizes)
+        if sent:
+            mark_dispatched(request.app.state.engine, sent)
+        return public
+
+    return answer_once(session, "batch", idempotency_key, earlier, record)
 
 
 router.add_api_route(

@@ -18,6 +18,7 @@ from atomq_service.api.deps import (
     SessionDep,
     SettingsDep,
 )
+from atomq_service.api.idempotency import answer_once
 from atomq_service.reconciler import mark_dispatched
 
 router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES, tags=["comparisons"])
@@ -37,26 +38,30 @@ def create_comparison(
 ) -> ComparisonPublic:
     """Rerun the selected finished jobs with another calculator version, as one batch:
     every job is created, or (when any is refused) none."""
-    if idempotency_key is not None:
-        earlier = comparisons.find_by_idempotency_key(session, user, idempotency_key, body)
-        if earlier is not None:
-            return comparisons.report(session, earlier)
-    comparison, created = comparisons.create_comparison(
-        session, user, body, settings, idempotency_key
-    )
-    public = comparisons.report(session, comparison)
-    # Commit first, then wake workers; a message lost here is re-sent by the reconciler.
-    session.commit()
-    # A job answered from an identical earlier result is already finished: nothing to run.
-    queued = [job for job in created if job.state == JobState.queued.value]
-    sent = [
-        job.id
-        for job in queued
-        if job.id is not None and dispatcher.send(job.id, job.calculator_ref)
-    ]
-    if sent:
-        mark_dispatched(request.app.state.engine, sent)
-    return public
+
+    def earlier(key: str) -> ComparisonPublic | None:
+        found = comparisons.find_by_idempotency_key(session, user, key, body)
+        return None if found is None else comparisons.report(session, found)
+
+    def record() -> ComparisonPublic:
+        comparison, created = comparisons.create_comparison(
+            session, user, body, settings, idempotency_key
+        )
+        public = comparisons.report(session, comparison)
+        # Commit first, then wake workers; a message lost here is re-sent by the reconciler.
+        session.commit()
+        # A job answered from an identical earlier result is already finished: nothing to run.
+        queued = [job for job in created if job.state == JobState.queued.value]
+        sent = [
+            job.id
+            for job in queued
+            if job.id is not None and dispatcher.send(job.id, job.calculator_ref)
+        ]
+        if sent:
+            mark_dispatched(request.app.state.engine, sent)
+        return public
+
+    return answer_once(session, "comparison", idempotency_key, earlier, record)
 
 
 @router.get("/comparisons/{comparison_id}")

@@ -29,6 +29,7 @@ from atomq_service.api.deps import (
     SettingsDep,
     WaitSeconds,
 )
+from atomq_service.api.idempotency import answer_once
 from atomq_service.errors import ApiError
 from atomq_service.models import Calculator, Job
 from atomq_service.prov import prov_document
@@ -54,21 +55,24 @@ def create_job(
     request: Request,
     idempotency_key: IdempotencyKey = None,
 ) -> JobPublic:
-    if idempotency_key is not None:
-        earlier = jobs.find_by_idempotency_key(session, user, idempotency_key, body)
-        if earlier is not None:
-            return jobs.to_public(session, [earlier])[0]
-    job = jobs.create_job(session, user, body, settings, idempotency_key)
-    public = jobs.to_public(session, [job])[0]
-    # The database is the truth: commit first, then send the wake-up call. If the send
-    # fails, or this process dies before it, the reconciler sends it later.
-    session.commit()
-    assert job.id is not None
-    if job.reused_from is not None:  # answered from an earlier result: nothing to run
+    def earlier(key: str) -> JobPublic | None:
+        found = jobs.find_by_idempotency_key(session, user, key, body)
+        return None if found is None else jobs.to_public(session, [found])[0]
+
+    def record() -> JobPublic:
+        job = jobs.create_job(session, user, body, settings, idempotency_key)
+        public = jobs.to_public(session, [job])[0]
+        # The database is the truth: commit first, then send the wake-up call. If the send
+        # fails, or this process dies before it, the reconciler sends it later.
+        session.commit()
+        assert job.id is not None
+        if job.reused_from is not None:  # answered from an earlier result: nothing to run
+            return public
+        if dispatcher.send(job.id, job.calculator_ref):
+            mark_dispatched(request.app.state.engine, [job.id])
         return public
-    if dispatcher.send(job.id, job.calculator_ref):
-        mark_dispatched(request.app.state.engine, [job.id])
-    return public
+
+    return answer_once(session, "job", idempotency_key, earlier, record)
 
 
 @router.get("/jobs", tags=["jobs"])
