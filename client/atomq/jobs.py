@@ -93,6 +93,9 @@ class JobPublic(BaseModel):
     natoms: int
     formula: str
     input_hash: str
+    hash_version: int = Field(
+        default=1, description="The canonical form input_hash covers (atomq.hashing)."
+    )
     attempts: int
     parents: list[int] = Field(default_factory=list, description="Jobs whose results it used.")
     time_limit_s: float

@@ -153,6 +153,10 @@ class Provenance(BaseModel):
     job_id: int
     owner: str
     input_hash: str
+    input_hash_version: int = Field(
+        default=1,
+        description="The canonical form the hash covers (atomq.hashing); 1 before versions.",
+    )
     calculator: str = Field(description="Exact registered version, name@version.")
     backend: str
     parameters: dict[str, JsonValue]

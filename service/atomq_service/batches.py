@@ -19,12 +19,12 @@ from sqlalchemy import Engine, Text, cast, func, insert
 from sqlmodel import Session, col, select
 
 from atomq.batches import BatchCreate, BatchPublic
-from atomq.hashing import hash_of_dumped
+from atomq.hashing import HASH_VERSION, hash_of
 from atomq.jobs import JobState
 from atomq.tasks import MD, Task
 from atomq_service import registry
 from atomq_service.errors import ApiError
-from atomq_service.jobs import check_queue_limit, copy_result, request_fingerprint
+from atomq_service.jobs import check_queue_limit, copy_result, request_fingerprint, reuse_hashes
 from atomq_service.models import Batch, Job, JobResult, JobTag, User, utcnow
 from atomq_service.presence import live_workers
 from atomq_service.settings import Settings
@@ -91,11 +91,24 @@ def create_batch(
     dumped_tasks = [
         task.model_dump(mode="json") if task is not body.task else shared_task for task in tasks
     ]
+    requests = list(zip(body.structures, dumped_structures, tasks, dumped_tasks, strict=True))
     hashes = [
-        hash_of_dumped(structure, task_json, calculator.ref, seed_of(task))
-        for structure, task_json, task in zip(dumped_structures, dumped_tasks, tasks, strict=True)
+        hash_of(structure, dumped, task, task_json, calculator.ref, seed_of(task))
+        for structure, dumped, task, task_json in requests
     ]
-    earlier = reusable_results(session, hashes) if body.reuse else {}
+    earlier: dict[str, tuple[Job, JobResult]] = {}
+    if body.reuse:
+        # Each job's version-2 hash, and where the database holds jobs hashed by version 1
+        # (from before hash versions), the version-1 hash the request would have had.
+        older = [
+            reuse_hashes(session, structure, dumped, task, task_json, calculator.ref, seed_of(task))
+            for structure, dumped, task, task_json in requests
+        ]
+        found = reusable_results(session, hashes + [h for hs in older for h in hs])
+        for hashed, old in zip(hashes, older, strict=True):
+            matches = [found[h] for h in (hashed, *old) if h in found]
+            if matches:
+                earlier[hashed] = min(matches, key=lambda match: match[0].id or 0)
     to_queue = sum(1 for hashed in hashes if hashed not in earlier)
     if to_queue:
         check_queue_limit(session, owner, settings, adding=to_queue)
@@ -129,6 +142,7 @@ def create_batch(
                 "natoms": structure.natoms,
                 "formula": structure.chemical_formula(),
                 "input_hash": hashed,
+                "hash_version": HASH_VERSION,
                 "seed": seed_of(task),
                 "parents": [],
                 "time_limit_s": time_limit_s,

@@ -16,11 +16,11 @@ from sqlalchemy import Text, cast, func
 from sqlalchemy.orm import defer
 from sqlmodel import Session, col, select
 
-from atomq.hashing import hash_of_dumped
+from atomq.hashing import HASH_VERSION, hash_of, v1_hash
 from atomq.jobs import JobCreate, JobPage, JobPublic, JobState
 from atomq.results import Provenance
 from atomq.structure import Structure
-from atomq.tasks import MD, NEB, JobReference
+from atomq.tasks import MD, NEB, JobReference, Task
 from atomq_service import registry
 from atomq_service.errors import ApiError
 from atomq_service.models import (
@@ -82,14 +82,16 @@ def check_queue_limit(session: Session, owner: User, settings: Settings, adding:
         )
 
 
-def find_reusable(session: Session, input_hash_: str) -> tuple[Job, JobResult] | None:
-    """The oldest job that computed this very input and succeeded, with its result. Only
-    jobs that ran themselves qualify (reused_from is null), so a copy is never copied."""
+def find_reusable(session: Session, hashes: Sequence[str]) -> tuple[Job, JobResult] | None:
+    """The oldest job that computed this very input and succeeded, with its result, found
+    by any of the request's hashes (its version-2 hash, and the version-1 hash of jobs
+    recorded before hash versions). Only jobs that ran themselves qualify (reused_from is
+    null), so a copy is never copied."""
     found = session.exec(
         select(Job, JobResult)
         .join(JobResult, col(JobResult.job_id) == col(Job.id))
         .where(
-            Job.input_hash == input_hash_,
+            col(Job.input_hash).in_(hashes),
             Job.state == JobState.succeeded.value,
             col(Job.reused_from).is_(None),
         )
@@ -97,6 +99,37 @@ def find_reusable(session: Session, input_hash_: str) -> tuple[Job, JobResult] |
         .limit(1)
     ).first()
     return None if found is None else (found[0], found[1])
+
+
+def reuse_hashes(
+    session: Session,
+    structure: Structure,
+    structure_json: dict[str, Any],
+    task: Task,
+    task_json: dict[str, Any],
+    calculator_ref: str,
+    seed: int | None,
+) -> list[str]:
+    """The version-1 hash a request would have had, where the database holds jobs that
+    were hashed so (databases from before hash versions); empty otherwise."""
+    if not has_version_1_jobs(session):
+        return []
+    old = v1_hash(structure, structure_json, task, task_json, calculator_ref, seed)
+    return [] if old is None else [old]
+
+
+# Jobs hashed by version 1 exist only in databases upgraded from before hash versions, and
+# no new ones are ever written: looked up once per database and process.
+_VERSION_1_JOBS: dict[str, bool] = {}
+
+
+def has_version_1_jobs(session: Session) -> bool:
+    url = str(session.get_bind().engine.url)
+    if url not in _VERSION_1_JOBS:
+        _VERSION_1_JOBS[url] = (
+            session.exec(select(Job.id).where(Job.hash_version == 1).limit(1)).first() is not None
+        )
+    return _VERSION_1_JOBS[url]
 
 
 def create_job(
@@ -144,8 +177,13 @@ def create_job(
     # Each in its JSON form once, for the hash and for the row (large structures: 0.15 s
     # per dump at 100 000 atoms).
     structure_json, task_json = structure.model_dump(mode="json"), task.model_dump(mode="json")
-    hashed = hash_of_dumped(structure_json, task_json, calculator.ref, seed)
-    reusable = find_reusable(session, hashed) if request.reuse else None
+    hashed = hash_of(structure, structure_json, task, task_json, calculator.ref, seed)
+    reusable = None
+    if request.reuse:
+        older = reuse_hashes(
+            session, structure, structure_json, task, task_json, calculator.ref, seed
+        )
+        reusable = find_reusable(session, [hashed, *older])
     if reusable is None:  # only work that will queue counts against the limit
         check_queue_limit(session, owner, settings)
     job = Job(
@@ -158,6 +196,7 @@ def create_job(
         natoms=structure.natoms,
         formula=structure.chemical_formula(),
         input_hash=hashed,
+        hash_version=HASH_VERSION,
         seed=seed,
         parents=parents,
         time_limit_s=time_limit_s,

@@ -206,15 +206,23 @@ def resolve(session: Session, reference: str) -> Calculator:
             f"unknown calculator {name!r}; registered calculators: {', '.join(sorted(known))}",
         )
     active = [c for c in versions if not c.retired]
+    default = default_version(session, name)
+    usable = default if default is not None and not default.retired else None
     if not version:
+        if not active:
+            raise ApiError(
+                422, "retired_calculator", f"every version of calculator {name!r} is retired"
+            )
         raise ApiError(
-            422, "retired_calculator", f"every version of calculator {name!r} is retired"
+            422,
+            "retired_calculator",
+            f"the default version of {name!r} is retired; name a version (active: "
+            f"{', '.join(c.version for c in active)}) or ask an admin to set a new default",
         )
     for calculator in versions:
         if calculator.version == version:
             if calculator.retired:
-                default = default_version(session, name)
-                instead = default if default is not None and not default.retired else None
+                instead = usable or (active[0] if active else None)
                 newer = f"; use {instead.ref}" if instead is not None else ""
                 raise ApiError(
                     422,

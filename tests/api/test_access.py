@@ -161,6 +161,8 @@ MATRIX: dict[tuple[str, str], tuple[str, ...]] = {
     ("POST", "/v1/calculators"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "201"),
     ("POST", "/v1/calculators/{name}/{version}/retire"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
     ("GET", "/v1/calculators/{name}/{version}"): (*DENIED, "200", "200", "200"),
+    ("PUT", "/v1/defaults/{name}"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
+    ("GET", "/v1/defaults/{name}"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/workers"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/me"): (*DENIED, "200", "200", "200"),
     ("GET", "/v1/users"): (*DENIED, ADMIN_ONLY, ADMIN_ONLY, "200"),
@@ -204,6 +206,8 @@ def prepare(lab: Lab, method: str, route: str) -> tuple[str, dict[str, Any] | No
         return f"/v1/calculators/to-retire-{n}/1/retire", None
     if route == "/v1/calculators/{name}/{version}":
         return "/v1/calculators/emt/1", None
+    if route == "/v1/defaults/{name}":
+        return "/v1/defaults/emt", ({"version": "1"} if method == "PUT" else None)
     if route == "/v1/prov-json":
         return f"{route}?tag=screening", None
     if (method, route) == ("POST", "/v1/users"):

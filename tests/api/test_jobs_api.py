@@ -472,14 +472,17 @@ def test_same_input_same_hash_other_version_other_hash(app: App) -> None:
     first = submit(app, job_body())
     again = submit(app, job_body())
     register_version(app, "2")
-    newer = submit(app, job_body())
+    newer = submit(app, job_body(calculator="emt@2"))
     assert first["input_hash"] == again["input_hash"]
     assert newer["input_hash"] != first["input_hash"]
 
 
-def test_bare_name_pins_the_newest_version_and_exact_ref_pins_itself(app: App) -> None:
+def test_bare_name_pins_the_default_version_and_exact_ref_pins_itself(app: App) -> None:
     assert submit(app, job_body(calculator="emt"))["calculator"] == "emt@1"
     register_version(app, "2")
+    assert submit(app, job_body(calculator="emt"))["calculator"] == "emt@1"  # not the newest
+    changed = app.http.put("/v1/defaults/emt", json={"version": "2"}, headers=app.headers)
+    assert changed.status_code == 200, changed.text
     assert submit(app, job_body(calculator="emt"))["calculator"] == "emt@2"
     assert submit(app, job_body(calculator="emt@1"))["calculator"] == "emt@1"
     assert submit(app, job_body(calculator="emt@2"))["calculator"] == "emt@2"
@@ -506,7 +509,7 @@ def five_jobs(app: App) -> dict[str, int]:
             app, job_body(calculator="emt@1", tags=["screening"])
         )["id"],
         "admin emt@2 relax screening+alloy": submit(
-            app, job_body(task=relax, tags=["screening", "alloy"])
+            app, job_body(task=relax, calculator="emt@2", tags=["screening", "alloy"])
         )["id"],
         "member emt@1 relax alloy": submit(
             app, job_body(task=relax, calculator="emt@1", tags=["alloy"]), member

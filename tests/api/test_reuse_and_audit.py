@@ -415,7 +415,8 @@ def test_a_different_seed_or_calculator_version_is_not_reused(app: App) -> None:
 
     assert post(app, other_seed)["reused_from"] is None
     assert post(app, no_seed)["reused_from"] is None  # the service draws a random seed
-    assert post(app, {**SHORT_MD, "calculator": "emt"})["reused_from"] is None  # emt@2 now
+    assert post(app, {**SHORT_MD, "calculator": "emt@2"})["reused_from"] is None
+    assert post(app, {**SHORT_MD, "calculator": "emt"})["reused_from"] == seeded  # emt@1
     assert post(app, {**SHORT_MD, "calculator": "emt@1"})["reused_from"] == seeded
 
 

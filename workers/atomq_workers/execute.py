@@ -692,6 +692,7 @@ def compute(
             job_id=job_id,
             owner=owner.name,
             input_hash=job.input_hash,
+            input_hash_version=job.hash_version,
             calculator=record.ref,
             backend=record.backend,
             parameters=record.parameters,
