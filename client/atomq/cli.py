@@ -11,7 +11,8 @@ import argparse
 import json
 import sys
 import warnings
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -208,9 +209,10 @@ def cmd_submit(args: argparse.Namespace) -> int:
                 print(f"batch {batch.id} finished: {counts}")
             return 0
         for atoms in images:
-            job = client.submit(
-                atoms, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
-            )
+            with _warnings_said():
+                job = client.submit(
+                    atoms, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
+                )
             print(job.id)
             _say_pinned(args.calculator, job)
             if args.wait:
@@ -238,14 +240,25 @@ def cmd_submit_neb(args: argparse.Namespace) -> int:
     except ValueError as exc:
         raise SystemExit(f"atomq submit-neb: {exc}") from exc
     with _client(args) as client:
-        job = client.submit(
-            None, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
-        )
+        with _warnings_said():
+            job = client.submit(
+                None, task, calculator=args.calculator, tags=args.tag, reuse=not args.fresh
+            )
         print(job.id)
         _say_pinned(args.calculator, job)
         if args.wait:
             _report_when_done(job)
     return 0
+
+
+@contextmanager
+def _warnings_said() -> Iterator[None]:
+    """The client's warnings (a job no live worker can run) as one plain line each."""
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        yield
+    for warning in caught:
+        print(f"warning: {warning.message}", file=sys.stderr)
 
 
 def _say_pinned(asked: str, job: Job) -> None:

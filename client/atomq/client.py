@@ -126,6 +126,10 @@ class Client:
         )
         response = self.request("POST", "/v1/jobs", **json_body(body.model_dump_json()))
         info = JobPublic.model_validate_json(response.content)
+        if info.waiting_reason is not None:  # queued, but no live worker can run it now
+            warnings.warn(
+                f"job {info.id} ({info.calculator}) waits: {info.waiting_reason}", stacklevel=2
+            )
         return Job(self, info.id, info)
 
     def submit_batch(

@@ -100,3 +100,25 @@ def test_the_last_version_of_a_name_retires_and_the_name_is_refused(app: App) ->
     )
     assert refused.status_code == 422
     assert "every version of calculator 'morse-cu' is retired" in refused.json()["detail"]
+
+
+def test_the_client_warns_when_no_live_worker_can_run_the_pinned_version(app: App) -> None:
+    """In-process there is no worker at all: the submission queues, and says why it waits."""
+    import warnings
+
+    from ase.build import bulk
+
+    from atomq import Client, SinglePoint
+
+    transport = app.http._transport
+    with (
+        Client(url="http://testserver", token=app.token, transport=transport) as client,
+        warnings.catch_warnings(record=True) as caught,
+    ):
+        warnings.simplefilter("always")
+        job = client.submit(bulk("Cu", "fcc", a=3.6), SinglePoint(), calculator="emt")
+    assert job.calculator == "emt@1"
+    assert [str(w.message) for w in caught] == [
+        f"job {job.id} (emt@1) waits: no worker is running; start one with `atomq worker` "
+        "to run emt@1"
+    ]
