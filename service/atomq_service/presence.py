@@ -55,8 +55,8 @@ def why_waiting(ref: str, workers: Sequence[Worker]) -> str | None:
         "; ".join(refusals)
         if refusals
         else (
-            "it was registered after they started (workers choose their calculators at start: "
-            "restart one) or they were started for other calculators"
+            "they were started for other calculators (`atomq worker --calculators`), or it "
+            "was registered moments ago (workers take up a new version at their next heartbeat)"
         )
     )
     return f"no live worker can run {ref}: {detail}"

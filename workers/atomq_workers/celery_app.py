@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import gc
 import os
+from collections.abc import Callable
 from functools import lru_cache
 
 from celery import Celery
@@ -47,8 +48,23 @@ def _announce(sender: object = None, **_kwargs: object) -> None:
     # Its own unpooled engine: this process forks replacement children, and a child must
     # never inherit an open SQLite connection (see WorkerHeartbeat).
     heartbeat_engine = make_engine(settings.resolved_database_url, pooled=False)
-    _heartbeat = WorkerHeartbeat(heartbeat_engine, name, settings.worker_heartbeat_s)
+    _heartbeat = WorkerHeartbeat(
+        heartbeat_engine, name, settings.worker_heartbeat_s, consuming_starter(sender)
+    )
     _heartbeat.start()
+
+
+def consuming_starter(consumer: object) -> Callable[[str], None] | None:
+    """How the heartbeat thread makes this worker consume one more queue: handed to the
+    consumer's event loop (call_soon is safe from another thread), as Celery's own
+    add_consumer control command does, without needing the broker's broadcast."""
+    if not hasattr(consumer, "add_task_queue") or not hasattr(consumer, "call_soon"):
+        return None
+
+    def start_consuming(queue: str) -> None:
+        consumer.call_soon(consumer.add_task_queue, queue)
+
+    return start_consuming
 
 
 @worker_shutdown.connect

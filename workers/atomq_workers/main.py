@@ -1,5 +1,6 @@
 """`atomq worker`: find which registered calculators this machine can run, then start
-Celery consuming exactly their queues."""
+Celery consuming exactly their queues (versions registered later are taken up by the
+heartbeat, see heartbeat.py)."""
 
 from __future__ import annotations
 
@@ -20,7 +21,13 @@ from atomq_service.schema import SchemaError, prepare_schema
 from atomq_service.settings import Settings
 from atomq_workers.backends_ml import shipped_checkpoints, tblite_records
 from atomq_workers.calculators import why_not_runnable
-from atomq_workers.heartbeat import CALCULATORS_ENV, CONCURRENCY_ENV, UNAVAILABLE_ENV
+from atomq_workers.heartbeat import (
+    CALCULATORS_ENV,
+    CONCURRENCY_ENV,
+    SELECTION_ENV,
+    UNAVAILABLE_ENV,
+    selected,
+)
 
 log = logging.getLogger(__name__)
 
@@ -57,7 +64,7 @@ def runnable_calculators(
     runnable: list[str] = []
     skipped: dict[str, str] = {}
     for record in records:
-        if selection and record.ref not in selection and record.name not in selection:
+        if not selected(record, selection or []):
             continue
         why = why_not_runnable(record)
         if why is None:
@@ -137,4 +144,5 @@ def run_worker(
     env[CALCULATORS_ENV] = json.dumps(refs)
     env[UNAVAILABLE_ENV] = json.dumps(skipped)
     env[CONCURRENCY_ENV] = str(concurrency)
+    env[SELECTION_ENV] = json.dumps(selection or [])  # new versions are chosen by it too
     os.execve(sys.executable, command, env)
