@@ -82,6 +82,15 @@ class Calculator(SQLModel, table=True):
         return f"{self.name}@{self.version}"
 
 
+class Deployment(SQLModel, table=True):
+    """This installation's identity, made once with its database: every PROV identifier
+    carries it, so records from two labs (or two databases of one) never collide."""
+
+    id: int = Field(default=1, primary_key=True)  # one row
+    identity: str  # a random UUID
+    created_at: datetime = Field(default_factory=utcnow, sa_type=UTCDateTime)
+
+
 class DefaultVersion(SQLModel, table=True):
     """Which version a bare calculator name means: one row per decision, never edited; the
     newest row of a name is in force. Registering a version never adds one, except for the

@@ -11,14 +11,22 @@ from __future__ import annotations
 import json
 from typing import Any
 
+from sqlmodel import Session, select
+
 from atomq.results import Provenance
+from atomq_service.models import Deployment
 
-PREFIX = {"atomq": "urn:atomq:"}
+
+def deployment_identity(session: Session) -> str:
+    """This installation's identity (made with its database, see models.Deployment)."""
+    return session.exec(select(Deployment.identity).where(Deployment.id == 1)).one()
 
 
-def _empty() -> dict[str, Any]:
+def _empty(identity: str) -> dict[str, Any]:
+    # Every identifier "atomq:job-32" expands to urn:atomq:<deployment>:job-32, unique
+    # across deployments: two labs' documents can be merged without a collision.
     return {
-        "prefix": dict(PREFIX),
+        "prefix": {"atomq": f"urn:atomq:{identity}:"},
         "entity": {},
         "activity": {},
         "agent": {},
@@ -31,10 +39,11 @@ def _empty() -> dict[str, Any]:
     }
 
 
-def prov_document(records: list[Provenance]) -> dict[str, Any]:
+def prov_document(records: list[Provenance], identity: str) -> dict[str, Any]:
     """One PROV-JSON document for these provenance records (a job and its lineage, or
-    every job with a tag)."""
-    document = _empty()
+    every job with a tag) of the deployment `identity`. A value a record lacks is left
+    out, never written as a placeholder."""
+    document = _empty(identity)
     entity, activity, agent = document["entity"], document["activity"], document["agent"]
     for p in records:
         job = f"atomq:job-{p.job_id}"
@@ -48,14 +57,16 @@ def prov_document(records: list[Provenance]) -> dict[str, Any]:
             "prov:type": "atomq:calculator",
             "atomq:backend": p.backend,
             "atomq:parameters": json.dumps(p.parameters, sort_keys=True),
-            "atomq:weights_sha256": p.weights_sha256 or "",
         }
+        if p.weights_sha256 is not None:
+            entity[calculator]["atomq:weights_sha256"] = p.weights_sha256
         activity[run] = {
             "prov:startTime": p.started_at.isoformat(),
             "prov:endTime": p.finished_at.isoformat(),
             "atomq:attempt": p.attempt,
-            "atomq:seed": -1 if p.seed is None else p.seed,
         }
+        if p.seed is not None:
+            activity[run]["atomq:seed"] = p.seed
         agent[user] = {"prov:type": "prov:Person", "prov:label": p.owner}
         agent[worker] = {
             "prov:type": "prov:SoftwareAgent",

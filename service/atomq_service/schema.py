@@ -20,6 +20,7 @@ from __future__ import annotations
 import shutil
 import sqlite3
 import subprocess
+import uuid
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -32,12 +33,22 @@ from alembic.autogenerate import compare_metadata
 from alembic.config import Config
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
-from sqlalchemy import Connection, DateTime, Engine, String, create_engine, inspect, make_url, text
+from sqlalchemy import (
+    Connection,
+    DateTime,
+    Engine,
+    String,
+    create_engine,
+    insert,
+    inspect,
+    make_url,
+    text,
+)
 from sqlmodel import SQLModel
 from sqlmodel.sql.sqltypes import AutoString
 
 from atomq_service import models  # noqa: F401  (registers the tables)
-from atomq_service.models import UTCDateTime
+from atomq_service.models import Deployment, UTCDateTime, utcnow
 from atomq_service.settings import Settings, hide_password
 
 MIGRATIONS_DIR = Path(__file__).parent / "migrations"
@@ -124,8 +135,7 @@ def prepare_schema(
         _locked(connection)
         state = read_state(connection)
         if state.empty:
-            SQLModel.metadata.create_all(connection)
-            MigrationContext.configure(connection).stamp(_scripts(), "head")
+            _create(connection)
             return
         if state.revision == head():
             return
@@ -148,6 +158,16 @@ def prepare_schema(
     announce(f"atomq: database backed up to {saved} (it opens as the database was)")
     before, after = upgrade(engine)
     announce(f"atomq: database upgraded from {before} to revision {after}")
+
+
+def _create(connection: Connection) -> None:
+    """A new database at the newest revision, with the rows the revisions would have
+    written (its identity)."""
+    SQLModel.metadata.create_all(connection)
+    MigrationContext.configure(connection).stamp(_scripts(), "head")
+    connection.execute(
+        insert(Deployment).values(id=1, identity=str(uuid.uuid4()), created_at=utcnow())
+    )
 
 
 def backup_beside(settings: Settings, state: SchemaState) -> Path:
@@ -177,8 +197,7 @@ def upgrade(engine: Engine) -> tuple[str, str]:
         _locked(connection)
         state = read_state(connection)
         if state.empty:
-            SQLModel.metadata.create_all(connection)
-            MigrationContext.configure(connection).stamp(_scripts(), "head")
+            _create(connection)
             return "empty", head()
         if state.revision is None:
             differences = differences_from_baseline(connection)

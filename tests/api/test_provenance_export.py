@@ -2,12 +2,17 @@
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 from ase.build import bulk
+from fastapi.testclient import TestClient
 
 from atomq import NEB, JobCreate, JobReference, Relax, Structure
+from atomq_service.app import create_app
+from atomq_service.settings import Settings
 from atomq_workers.execute import run_job
 from tests.conftest import App
 
@@ -102,3 +107,43 @@ def assert_valid_prov(document: dict[str, Any]) -> None:
             for key, value in record.items():
                 if key in DECLARED_AS:  # every reference points at a declared record
                     assert value in document[DECLARED_AS[key]], (kind, key, value)
+
+
+def _expanded_identifiers(document: dict[str, Any]) -> set[str]:
+    """Every declared identifier with its prefix written out (blank relation ids aside)."""
+    (prefix,) = document["prefix"].values()
+    return {
+        name.replace("atomq:", prefix, 1)
+        for kind in ("entity", "activity", "agent")
+        for name in document[kind]
+    }
+
+
+def test_prov_json_of_two_deployments_shares_no_identifier(tmp_path: Path) -> None:
+    """Two installations, the same work as job 1 in each: the documents never collide, a
+    value a record lacks (a seed, weights) is left out, and W3C PROV's own Python
+    implementation (the `prov` package) reads each document."""
+    import prov.model
+
+    documents = []
+    for lab in ("north-lab", "south-lab"):
+        settings = Settings(data_dir=tmp_path / lab, broker_url="memory://")
+        with TestClient(create_app(settings)) as http:
+            app = App(http, settings)
+            atoms = bulk("Cu", "fcc", a=3.61, cubic=True)
+            body = JobCreate(structure=Structure.from_atoms(atoms), task=Relax(), calculator="emt")
+            job = submit_and_run(app, body)
+            answer = app.http.get(f"/v1/jobs/{job}/prov-json", headers=app.headers)
+            assert answer.status_code == 200, answer.text
+            documents.append(answer.json())
+    first, second = (_expanded_identifiers(d) for d in documents)
+    assert first and second and not first & second
+    for document in documents:
+        (run,) = document["activity"].values()
+        assert "atomq:seed" not in run  # a relaxation has no seed: nothing is made up
+        calculators = [
+            e for e in document["entity"].values() if e["prov:type"] == "atomq:calculator"
+        ]
+        assert calculators and all("atomq:weights_sha256" not in c for c in calculators)
+        parsed = prov.model.ProvDocument.deserialize(content=json.dumps(document), format="json")
+        assert len(list(parsed.get_records(prov.model.ProvActivity))) == 1

@@ -187,7 +187,7 @@ def test_embedded_default_upgrades_after_a_backup_and_keeps_every_row(old_sqlite
 
     # Every row of every table identical, field by field, as stored.
     after = raw_rows(database)
-    assert after.keys() == before.keys() | {"defaultversion"}  # the tables revisions added
+    assert after.keys() == before.keys() | {"defaultversion", "deployment"}  # added since
     for table, rows in before.items():
         columns = fixture_columns()[table]
         with sqlite3.connect(database) as connection:

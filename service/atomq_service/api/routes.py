@@ -32,7 +32,7 @@ from atomq_service.api.deps import (
 from atomq_service.api.idempotency import answer_once
 from atomq_service.errors import ApiError
 from atomq_service.models import Calculator, Job
-from atomq_service.prov import prov_document
+from atomq_service.prov import deployment_identity, prov_document
 from atomq_service.reconciler import mark_dispatched
 
 router = APIRouter(prefix="/v1", responses=ERROR_RESPONSES)
@@ -240,7 +240,8 @@ def get_lineage(job_id: JobId, _user: CurrentUser, session: SessionDep) -> list[
 @router.get("/jobs/{job_id}/prov-json", tags=["provenance"])
 def get_prov_json(job_id: JobId, _user: CurrentUser, session: SessionDep) -> dict[str, Any]:
     """The job's lineage as a W3C PROV-JSON document."""
-    return prov_document(jobs.lineage(session, jobs.get_job(session, job_id)))
+    records = jobs.lineage(session, jobs.get_job(session, job_id))
+    return prov_document(records, deployment_identity(session))
 
 
 @router.get("/prov-json", tags=["provenance"])
@@ -248,7 +249,7 @@ def get_tag_prov_json(
     tag: Annotated[str, Query(pattern=NAME_PATTERN)], _user: CurrentUser, session: SessionDep
 ) -> dict[str, Any]:
     """Every finished job with this tag as one W3C PROV-JSON document."""
-    return prov_document(jobs.tagged_provenance(session, tag))
+    return prov_document(jobs.tagged_provenance(session, tag), deployment_identity(session))
 
 
 @router.get("/jobs/{job_id}/artifacts", tags=["results"])
