@@ -30,7 +30,16 @@ from atomq.results import (
 from atomq.structure import Structure, StructureError
 from atomq.tasks import MD, NEB, CellRelax, JobReference, Relax, SinglePoint, TaskSpec
 
-__version__ = "0.1.0"
+
+def __getattr__(name: str) -> str:
+    # atomq.__version__ is worked out on first use (it may ask git, see atomq.version),
+    # so importing atomq runs no subprocess.
+    if name == "__version__":
+        from atomq.version import code_identity
+
+        return code_identity().version
+    raise AttributeError(f"module 'atomq' has no attribute {name!r}")
+
 
 __all__ = [
     "MD",

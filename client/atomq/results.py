@@ -162,6 +162,15 @@ class Provenance(BaseModel):
     parameters: dict[str, JsonValue]
     weights_sha256: str | None
     packages: dict[str, str] = Field(description="Versions of python, atomq, ase, numpy, backend.")
+    atomq_commit: str | None = Field(
+        default=None,
+        description="The git commit of the atomq code that ran, when it ran from a work "
+        "tree; absent for a release install and in records from before it was kept.",
+    )
+    atomq_dirty: bool | None = Field(
+        default=None,
+        description="Whether that work tree's tracked files differed from the commit.",
+    )
     host: str
     pid: int
     cpu: str

@@ -75,6 +75,10 @@ def prov_document(records: list[Provenance], identity: str) -> dict[str, Any]:
             "atomq:packages": json.dumps(p.packages, sort_keys=True),
             "atomq:threads": json.dumps(p.threads, sort_keys=True),
         }
+        if p.atomq_commit is not None:  # the atomq code ran from a git work tree
+            agent[worker]["atomq:commit"] = p.atomq_commit
+            if p.atomq_dirty is not None:
+                agent[worker]["atomq:dirty"] = p.atomq_dirty
         relation = _relations(document, p.job_id)
         relation("used", {"prov:activity": run, "prov:entity": given})
         relation("used", {"prov:activity": run, "prov:entity": calculator})

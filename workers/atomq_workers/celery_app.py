@@ -11,6 +11,7 @@ from celery import Celery
 from celery.signals import worker_process_init, worker_ready, worker_shutdown
 from sqlalchemy import Engine
 
+from atomq.version import code_identity
 from atomq_service.db import make_engine
 from atomq_service.messaging import RUN_JOB_TASK, RUN_JOBS_TASK, celery_config
 from atomq_service.settings import get_settings
@@ -18,6 +19,9 @@ from atomq_workers import execute
 from atomq_workers.heartbeat import WorkerHeartbeat
 
 settings = get_settings()
+# atomq's code identity (git commit, dirty flag), worked out once in the main process
+# before it forks children: every job of this worker names the code it started with.
+code_identity()
 app = Celery("atomq-workers")
 app.conf.update(celery_config(settings.broker_url or "memory://"))
 

@@ -10,6 +10,8 @@ from functools import lru_cache
 from importlib.metadata import PackageNotFoundError, version
 from typing import TYPE_CHECKING, Any
 
+from atomq.version import code_identity
+
 if TYPE_CHECKING:
     from atomq_workers.backends import Backend
 
@@ -64,9 +66,10 @@ def _native_thread_counts() -> dict[str, int]:
 
 
 def environment(backend: Backend | None, parameters: dict[str, Any]) -> dict[str, object]:
+    atomq = code_identity()  # worked out once per process (the worker does so at start)
     packages = {
         "python": platform.python_version(),
-        "atomq": package_version("atomq"),
+        "atomq": atomq.version,
         "ase": package_version("ase"),
         "numpy": package_version("numpy"),
     }
@@ -78,6 +81,8 @@ def environment(backend: Backend | None, parameters: dict[str, Any]) -> dict[str
             packages.setdefault(name, package_version(name))
     return {
         "packages": packages,
+        "atomq_commit": atomq.commit,
+        "atomq_dirty": atomq.dirty,
         "host": socket.gethostname(),
         "pid": os.getpid(),
         "cpu": cpu_model(),
