@@ -485,7 +485,10 @@ def cmd_calculators_add(args: argparse.Namespace) -> int:
         f"registered {c.ref}"
         + (f" (weights sha256 {c.weights_sha256})" if c.weights_sha256 else "")
     )
-    print("workers choose their calculators at start: restart the workers that should run it")
+    print(
+        "running workers take it up at their next heartbeat; "
+        f"'{c.name}' still means its default version (atomq calculators default {c.name})"
+    )
     return 0
 
 

@@ -130,13 +130,16 @@ def test_retired_version_refuses_new_jobs_and_keeps_its_history(redis_stack: Sta
     with transaction(redis_stack.engine) as session:
         register(session, name="emt", version="2", backend="emt", elements=["Cu"])
     admin = Client(redis_stack.url, add_user(redis_stack.engine, "ada-admin", role="admin"))
-    retired = admin.retire_calculator("emt@1")
+    with pytest.raises(InvalidRequest) as needs_successor:
+        admin.retire_calculator("emt@1")  # the default version of emt: name the next one
+    assert "new_default: one of 2" in str(needs_successor.value)
+    retired = admin.retire_calculator("emt@1", new_default="2")
     assert retired.retired and retired.jobs_run == 1
 
     with pytest.raises(InvalidRequest) as refused:
         cu_single_point(client, "emt@1")
     assert "emt@1 is retired" in str(refused.value) and "use emt@2" in str(refused.value)
-    # Unpinned, the name now means the active version.
+    # Unpinned, the name now means the successor named at retirement.
     assert client.job(cu_single_point(client, "emt")).info().calculator == "emt@2"
     # The old job keeps its result and the provenance that names the retired version.
     provenance = old.provenance()
