@@ -10,13 +10,27 @@ from typing import Any
 import numpy as np
 import pytest
 from ase import Atoms
-from ase.build import add_adsorbate, fcc100
-from ase.constraints import FixAtoms, FixBondLength, FixCartesian
+from ase.build import add_adsorbate, fcc100, molecule
+from ase.constraints import (
+    FixAtoms,
+    FixBondLength,
+    FixBondLengths,
+    FixCartesian,
+    FixCom,
+    FixConstraint,
+    FixedLine,
+    FixedPlane,
+    FixInternals,
+    FixScaled,
+    FixSubsetCom,
+    Hookean,
+)
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
 from pydantic import ValidationError
 
-from atomq.structure import Structure, StructureError
+from atomq.structure import OWN_FIELDS, Structure, StructureError
 
 # Values that trip up float printing and parsing: signed zero, the smallest subnormal,
 # the smallest normal, the largest finite double, a value near the subnormal range, and
@@ -60,6 +74,42 @@ json_values = st.recursive(
 )
 info_dicts = st.dictionaries(st.text(max_size=10), json_values, max_size=5)
 
+# Masses: any positive finite float64, the smallest subnormal and the largest double too.
+positive_floats = st.one_of(
+    st.sampled_from([5e-324, 2.2250738585072014e-308, 1e-300, 1.7976931348623157e308, 2.014]),
+    st.floats(min_value=5e-324, allow_nan=False, allow_infinity=False),
+)
+array_names = st.from_regex(r"[A-Za-z_][A-Za-z0-9_]{0,8}", fullmatch=True).filter(
+    lambda name: name not in OWN_FIELDS and name != "symbols"
+)
+# numpy strips trailing NUL characters from its fixed-width strings, so none are drawn.
+array_text = st.text(st.characters(blacklist_characters="\x00"), max_size=6)
+
+
+@st.composite
+def per_atom_array(draw: st.DrawFn, natoms: int) -> np.ndarray:
+    """A float64, int64, int32, bool or str array of shape (natoms,) or (natoms, k)."""
+    shape = (natoms,) if draw(st.booleans()) else (natoms, draw(st.integers(1, 4)))
+    dtype, elements = draw(
+        st.sampled_from(
+            [
+                (np.dtype(np.float64), finite_floats),
+                (np.dtype(np.int64), st.integers(-(2**63), 2**63 - 1)),
+                (np.dtype(np.int32), st.integers(-(2**31), 2**31 - 1)),
+                (np.dtype(bool), st.booleans()),
+                (np.dtype("<U6"), array_text),
+            ]
+        )
+    )
+    return draw(hnp.arrays(dtype, shape, elements=elements))
+
+
+# Directions away from overflow and underflow of ASE's own normalisation.
+direction_component = st.floats(min_value=-1e3, max_value=1e3, allow_nan=False)
+directions = st.tuples(direction_component, direction_component, direction_component).filter(
+    lambda v: float(np.linalg.norm(v)) > 1e-3
+)
+
 
 @st.composite
 def random_atoms(draw: st.DrawFn) -> Atoms:
@@ -84,13 +134,36 @@ def random_atoms(draw: st.DrawFn) -> Atoms:
     if draw(st.booleans()):
         atoms.set_tags(draw(st.lists(st.integers(-(2**31), 2**31 - 1), min_size=n, max_size=n)))
 
-    constraints: list[FixAtoms | FixCartesian] = []
+    if draw(st.booleans()):
+        atoms.set_masses(draw(st.lists(positive_floats, min_size=n, max_size=n)))
+    for name in draw(st.lists(array_names, max_size=3, unique=True)):
+        atoms.new_array(name, draw(per_atom_array(n)))
+
+    def some_atoms() -> list[int]:
+        selected = draw(st.lists(st.booleans(), min_size=n, max_size=n))
+        return [i for i, chosen in enumerate(selected) if chosen]
+
+    constraints: list[FixConstraint] = []
     if draw(st.booleans()):
         constraints.append(FixAtoms(mask=draw(st.lists(st.booleans(), min_size=n, max_size=n))))
     if draw(st.booleans()):
-        selected = draw(st.lists(st.booleans(), min_size=n, max_size=n))
-        indices = [i for i, chosen in enumerate(selected) if chosen]
-        constraints.append(FixCartesian(indices, mask=draw(mask3)))
+        constraints.append(FixCartesian(some_atoms(), mask=draw(mask3)))
+    if draw(st.booleans()):
+        constraints.append(FixedPlane(some_atoms(), draw(directions)))
+    if draw(st.booleans()):
+        constraints.append(FixedLine(some_atoms(), draw(directions)))
+    if draw(st.booleans()):
+        constraints.append(FixCom())
+    if draw(st.booleans()):
+        constraints.append(FixSubsetCom(some_atoms()))
+    if n >= 2 and draw(st.booleans()):
+        pair = st.lists(st.integers(0, n - 1), min_size=2, max_size=2, unique=True)
+        pairs = draw(st.lists(pair, min_size=1, max_size=3))
+        bondlengths = draw(
+            st.none() | st.lists(positive_floats, min_size=len(pairs), max_size=len(pairs))
+        )
+        tolerance = draw(st.sampled_from([1e-13, 1e-8, 0.0]))
+        constraints.append(FixBondLengths(pairs, tolerance=tolerance, bondlengths=bondlengths))
     if constraints:
         atoms.set_constraint(constraints)
     atoms.info = draw(info_dicts)
@@ -98,7 +171,7 @@ def random_atoms(draw: st.DrawFn) -> Atoms:
 
 
 def assert_bitwise_equal(name: str, before: np.ndarray, after: np.ndarray) -> None:
-    assert before.dtype.kind == after.dtype.kind, f"{name}: dtype {before.dtype} -> {after.dtype}"
+    assert before.dtype == after.dtype, f"{name}: dtype {before.dtype} -> {after.dtype}"
     assert before.shape == after.shape, f"{name}: shape {before.shape} -> {after.shape}"
     assert np.array_equal(before, after), f"{name} changed"
     if before.dtype.kind == "f":
@@ -112,25 +185,39 @@ def assert_bitwise_equal(name: str, before: np.ndarray, after: np.ndarray) -> No
     deadline=None,
     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
 )
-@given(random_atoms())
-def test_atoms_survive_the_wire_bit_for_bit(atoms: Atoms) -> None:
-    wire = Structure.from_atoms(atoms).model_dump_json()
-    back = Structure.model_validate_json(wire).to_atoms()
+@given(random_atoms(), st.booleans())
+def test_atoms_survive_the_wire_bit_for_bit(atoms: Atoms, as_text: bool) -> None:
+    structure = Structure.from_atoms(atoms)
+    if as_text:  # what the client sends and the service reads
+        back = Structure.model_validate_json(structure.model_dump_json()).to_atoms()
+    else:  # what the service stores (a JSON column) and the worker reads back
+        back = Structure.model_validate(structure.model_dump(mode="json")).to_atoms()
 
     assert_bitwise_equal("numbers", atoms.numbers, back.numbers)
     assert_bitwise_equal("pbc", atoms.pbc, back.pbc)
     assert_bitwise_equal("cell", atoms.cell.array, back.cell.array)
-    # Every per-atom array (positions, charges, magmoms, momenta, tags) and no extra ones.
+    # Every per-atom array (positions, charges, magmoms, momenta, tags, masses and the
+    # extra ones, whatever their dtype and shape) and no others.
     assert set(back.arrays) == set(atoms.arrays)
     for name, before in atoms.arrays.items():
         assert_bitwise_equal(name, before, back.arrays[name])
+    assert_bitwise_equal("get_masses()", atoms.get_masses(), back.get_masses())
 
     assert len(back.constraints) == len(atoms.constraints)
     for before, after in zip(atoms.constraints, back.constraints, strict=True):
         assert type(after) is type(before)
-        assert np.array_equal(before.index, after.index)
-        if isinstance(before, FixCartesian):
-            assert np.array_equal(before.mask, after.mask)
+        # ASE's own description of each constraint (indices, masks, directions, pairs).
+        assert after.todict() == before.todict()
+        if isinstance(before, FixedPlane | FixedLine):
+            assert_bitwise_equal("direction", before.dir, after.dir)
+        if isinstance(before, FixBondLengths):
+            assert after.tolerance == before.tolerance
+            if before.bondlengths is None:
+                assert after.bondlengths is None
+            else:
+                assert_bitwise_equal(
+                    "bondlengths", np.asarray(before.bondlengths), after.bondlengths
+                )
 
     assert back.info == atoms.info
     # == calls 1 == 1.0 == True and 0.0 == -0.0 equal; the JSON text tells them apart.
@@ -182,14 +269,91 @@ def test_non_string_top_level_info_key_is_refused() -> None:
         Structure.from_atoms(atoms)
 
 
-def test_unsupported_constraint_is_refused_by_name() -> None:
-    atoms = Atoms("Cu2", positions=[(0, 0, 0), (2.5, 0, 0)])
-    constraint = FixBondLength(0, 1)  # ASE builds a FixBondLengths for one pair
+@pytest.mark.parametrize(
+    "constraint",
+    [
+        Hookean(0, 1, 5.0, rt=1.2),
+        FixScaled(0, mask=(True, False, False)),
+        FixInternals(bonds=[(1.0, (0, 1))]),
+    ],
+    ids=["Hookean", "FixScaled", "FixInternals"],
+)
+def test_a_constraint_that_cannot_travel_is_refused_by_name(constraint: FixConstraint) -> None:
+    atoms = molecule("H2O")
     atoms.set_constraint(constraint)
-    name = type(constraint).__name__
-    with pytest.raises(StructureError, match=f"constraint {name} cannot be sent") as caught:
+    with pytest.raises(StructureError) as caught:
         Structure.from_atoms(atoms)
-    assert "supported are FixAtoms and FixCartesian" in str(caught.value)
+    message = str(caught.value)
+    assert type(constraint).__name__ in message and "FixBondLengths" in message
+
+
+def test_each_constraint_acts_as_ase_applies_it() -> None:
+    """Reference: ASE itself. The same displacement through the original constraints and
+    through the ones rebuilt from the wire moves every atom to the same bits."""
+    atoms = molecule("CH3CH2OH")
+    atoms.center(vacuum=4.0)
+    atoms.set_constraint(
+        [
+            FixBondLength(0, 1),
+            FixedPlane([2, 3], (0.0, 0.0, 1.0)),
+            FixedLine([4], (1.0, 1.0, 0.0)),
+            FixCartesian([5], mask=(True, False, True)),
+            FixAtoms(indices=[6]),
+        ]
+    )
+    back = Structure.model_validate_json(Structure.from_atoms(atoms).model_dump_json()).to_atoms()
+    rng = np.random.default_rng(3)
+    step = atoms.positions + rng.normal(scale=0.05, size=atoms.positions.shape)
+    moved, moved_back = atoms.copy(), back.copy()
+    moved.set_positions(step)  # apply_constraint=True: ASE adjusts the step
+    moved_back.set_positions(step)
+    assert moved.positions.tobytes() == moved_back.positions.tobytes()
+    forces = rng.normal(size=atoms.positions.shape)
+    for original, rebuilt in zip(atoms.constraints, back.constraints, strict=True):
+        a, b = forces.copy(), forces.copy()
+        original.adjust_forces(atoms, a)
+        rebuilt.adjust_forces(back, b)
+        assert a.tobytes() == b.tobytes(), type(original).__name__
+
+
+def test_fix_com_keeps_the_centre_of_mass_with_custom_masses() -> None:
+    """FixCom weighs by the masses: with deuterium masses sent along, the rebuilt atoms
+    keep the same centre of mass as ASE does on the original."""
+    atoms = molecule("H2O")
+    atoms.set_masses([15.999, 2.014, 2.014])
+    atoms.set_constraint(FixCom())
+    back = Structure.from_atoms(atoms).to_atoms()
+    step = atoms.positions + np.array([[0.1, 0.0, 0.0], [0.0, 0.2, 0.0], [0.0, 0.0, 0.3]])
+    atoms.set_positions(step)
+    back.set_positions(step)
+    assert atoms.positions.tobytes() == back.positions.tobytes()
+
+
+@pytest.mark.parametrize(
+    ("value", "fragment"),
+    [
+        (np.array([1 + 2j, 0j, 1j]), "complex numbers"),
+        (np.array([object(), object(), object()], dtype=object), "Python objects"),
+        (np.array([0.0, math.nan, 1.0]), "not finite at atom 1"),
+        (np.zeros((3, 2, 2)), "one value or one row of values per atom"),
+        (np.array([1, 2, 3], dtype=np.uint8), "dtype uint8"),
+    ],
+)
+def test_an_array_that_cannot_travel_is_refused_by_name(value: np.ndarray, fragment: str) -> None:
+    atoms = molecule("H2O")
+    atoms.arrays["site_label"] = value
+    with pytest.raises(StructureError, match=r"atoms\.arrays\['site_label'\]") as caught:
+        Structure.from_atoms(atoms)
+    assert fragment in str(caught.value)
+
+
+def test_bad_masses_are_refused_naming_the_atom() -> None:
+    atoms = molecule("H2O")
+    atoms.set_masses([15.999, 0.0, 1.008])
+    with pytest.raises(StructureError, match=r"mass of atom 1 \(H\) is 0.0"):
+        Structure.from_atoms(atoms)
+    with pytest.raises(ValidationError, match="mass of atom 0"):
+        Structure.model_validate({"numbers": [1], "positions": [[0.0, 0.0, 0.0]], "masses": [-1.0]})
 
 
 def test_negative_constraint_index_travels_as_the_atom_ase_means() -> None:
