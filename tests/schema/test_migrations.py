@@ -203,9 +203,7 @@ def test_embedded_default_upgrades_after_a_backup_and_keeps_every_row(old_sqlite
     # registered last (the rule of the code at 780447e, applied to the fixture in SQL).
     with sqlite3.connect(FIXTURE / "atomq.db") as original:
         meant = dict(
-            original.execute(
-                "SELECT name, max(id) FROM calculator WHERE NOT retired GROUP BY name"
-            )
+            original.execute("SELECT name, max(id) FROM calculator WHERE NOT retired GROUP BY name")
         )
     with sqlite3.connect(database) as connection:
         defaults = dict(
