@@ -363,6 +363,176 @@ def test_negative_constraint_index_travels_as_the_atom_ase_means() -> None:
     assert np.arange(3)[back.constraints[0].index].tolist() == [2]
 
 
+# -- each new constraint, one at a time: positions, forces and momenta as ASE adjusts them
+# The mass of deuterium, 2.014 u: the 2H atomic mass is 2.01410177812 u (AME2020 atomic
+# mass evaluation; recalled from memory), against ASE's 1.008 for hydrogen (the IUPAC
+# standard atomic weight, ase.data.atomic_masses).
+DEUTERIUM_AMU = 2.014
+
+
+def heavy_water() -> Atoms:
+    """D2O in a periodic 8 Angstrom box: the deuterium masses make the mass-weighted
+    constraints (FixBondLengths, FixCom, FixSubsetCom) depend on the masses too."""
+    atoms = molecule("H2O")
+    atoms.center(vacuum=4.0)
+    atoms.pbc = True
+    masses = atoms.get_masses()
+    masses[atoms.numbers == 1] = DEUTERIUM_AMU
+    atoms.set_masses(masses)
+    return atoms
+
+
+def over_the_wire(atoms: Atoms) -> Atoms:
+    return Structure.model_validate_json(Structure.from_atoms(atoms).model_dump_json()).to_atoms()
+
+
+def random_step(atoms: Atoms, seed: int) -> list[np.ndarray]:
+    """New positions, forces and momenta, as an integrator hands them to a constraint."""
+    rng = np.random.default_rng(seed)
+    shape = atoms.positions.shape
+    return [
+        atoms.positions + rng.normal(scale=0.05, size=shape),
+        rng.normal(size=shape),
+        rng.normal(size=shape),
+    ]
+
+
+def adjusted(atoms: Atoms, seed: int = 7) -> list[np.ndarray]:
+    """The random step after every constraint of the atoms has adjusted it."""
+    positions, forces, momenta = random_step(atoms, seed)
+    for constraint in atoms.constraints:
+        constraint.adjust_positions(atoms, positions)
+        constraint.adjust_forces(atoms, forces)
+        constraint.adjust_momenta(atoms, momenta)
+    return [positions, forces, momenta]
+
+
+NEW_CONSTRAINTS = {
+    "FixBondLength": lambda: FixBondLength(0, 1),
+    "FixBondLengths": lambda: FixBondLengths([(0, 1), (0, -1)], tolerance=1e-10),
+    "FixBondLengths-targets": lambda: FixBondLengths([(1, 2)], bondlengths=[1.4]),
+    "FixedPlane": lambda: FixedPlane([0, 2], [1.0, 2.0, 3.0]),
+    "FixedLine": lambda: FixedLine(1, [0.0, 1.0, 1.0]),
+    "FixCom": FixCom,
+    "FixSubsetCom": lambda: FixSubsetCom([1, 2]),
+}
+
+
+@pytest.mark.parametrize("make", NEW_CONSTRAINTS.values(), ids=NEW_CONSTRAINTS.keys())
+def test_a_new_constraint_adjusts_as_ases_own(make: Any) -> None:
+    # Reference: ASE's original constraint object acting on the original atoms.
+    original = heavy_water()
+    original.set_constraint(make())
+    rebuilt = over_the_wire(original)
+    assert type(rebuilt.constraints[0]) is type(original.constraints[0])
+    expected, got = adjusted(original), adjusted(rebuilt)
+    for name, before, after in zip(("positions", "forces", "momenta"), expected, got, strict=True):
+        assert before.tobytes() == after.tobytes(), name
+    # The constraint did change the step, so a constraint lost on the way would show.
+    raw = random_step(original, 7)
+    assert any(a.tobytes() != b.tobytes() for a, b in zip(expected, raw, strict=True))
+
+
+@pytest.mark.parametrize(
+    "make", [FixCom, lambda: FixSubsetCom([0, 1]), lambda: FixBondLength(0, 1)]
+)
+def test_mass_weighted_constraints_act_with_the_masses_that_travelled(make: Any) -> None:
+    # With ASE's default hydrogen mass the same constraint moves the atoms differently,
+    # so masses dropped on the way would show here.
+    original = heavy_water()
+    original.set_constraint(make())
+    rebuilt = over_the_wire(original)
+    default_masses = rebuilt.copy()
+    default_masses.set_masses()  # ASE's standard atomic weights
+    assert adjusted(rebuilt)[0].tobytes() == adjusted(original)[0].tobytes()
+    assert adjusted(default_masses)[0].tobytes() != adjusted(original)[0].tobytes()
+
+
+def test_fix_bond_lengths_keeps_its_targets_once_it_has_acted() -> None:
+    # ASE fills in bondlengths the first time the constraint acts (an MD run's first
+    # step); a final structure sent back after that keeps those targets, not the
+    # distances of wherever the atoms stand when it is rebuilt.
+    original = heavy_water()
+    original.set_constraint(FixBondLengths([(0, 1), (0, 2)]))
+    adjusted(original)
+    targets = np.array(original.constraints[0].bondlengths)
+    original.set_positions(original.positions * 1.01, apply_constraint=False)
+    rebuilt = over_the_wire(original)
+    assert rebuilt.constraints[0].bondlengths.tobytes() == targets.tobytes()
+    assert not np.allclose(rebuilt.get_distances(0, [1, 2]), targets)  # the atoms moved
+    for before, after in zip(adjusted(original, 3), adjusted(rebuilt, 3), strict=True):
+        assert before.tobytes() == after.tobytes()
+
+
+def test_negative_pair_index_travels_as_the_atom_ase_means() -> None:
+    atoms = Atoms("Cu3", positions=[(0, 0, 0), (2.5, 0, 0), (5, 0, 0)])
+    atoms.set_constraint(FixBondLengths([(0, -2)]))
+    assert over_the_wire(atoms).constraints[0].pairs.tolist() == [[0, 1]]
+
+
+class PinnedAtoms(FixAtoms):
+    """A subclass may act differently from the constraint it derives from."""
+
+
+def test_a_subclass_of_a_supported_constraint_is_refused_by_its_own_name() -> None:
+    atoms = molecule("H2O")
+    atoms.set_constraint(PinnedAtoms(indices=[0]))
+    with pytest.raises(StructureError, match="constraint PinnedAtoms cannot be sent"):
+        Structure.from_atoms(atoms)
+
+
+# -- masses and extra arrays: what a plain structure sends, and what is refused ----------
+def test_default_masses_and_no_extras_leave_the_new_fields_at_their_defaults() -> None:
+    # ASE keeps no masses array while its standard weights apply; nothing is sent then,
+    # and the rebuilt atoms use ASE's defaults again.
+    structure = Structure.from_atoms(molecule("H2O"))
+    assert structure.masses is None and structure.arrays == {}
+    assert {"masses", "arrays"}.isdisjoint(structure.model_dump(exclude_defaults=True))
+    back = structure.to_atoms()
+    assert "masses" not in back.arrays
+    assert back.get_masses().tolist() == molecule("H2O").get_masses().tolist()
+
+
+def test_heavy_water_masses_come_back_exactly() -> None:
+    back = over_the_wire(heavy_water())
+    assert back.get_masses().tolist() == [15.999, DEUTERIUM_AMU, DEUTERIUM_AMU]
+    assert back.get_masses()[1] != Atoms("H").get_masses()[0]  # not ASE's 1.008
+
+
+@pytest.mark.parametrize("mass", [-2.0, math.nan, math.inf])
+def test_a_mass_that_is_not_positive_and_finite_is_refused(mass: float) -> None:
+    atoms = heavy_water()
+    masses = atoms.get_masses()
+    masses[2] = mass
+    atoms.set_masses(masses)
+    with pytest.raises(StructureError, match=r"mass of atom 2 \(H\) is") as caught:
+        Structure.from_atoms(atoms)
+    assert "set_masses" in str(caught.value)
+
+
+@pytest.mark.parametrize(
+    ("name", "value", "fragment"),
+    [
+        ("field", np.array([[0.0, 1.0], [math.inf, 0.0], [0.0, 0.0]]), "not finite at atom 1"),
+        ("weights", np.ones(3, dtype=np.float32), "dtype float32"),
+        ("raw", np.array([b"a", b"b", b"c"]), "dtype |S1"),
+        ("empty_rows", np.zeros((3, 0)), "has shape (3, 0)"),
+        ("too_long", np.zeros(4), "has shape (4,) but there are 3 atoms"),
+        ("a:b", np.zeros(3), "is not a plain name"),
+        ("symbols", np.array(["O", "H", "H"]), "ASE's own name"),
+    ],
+)
+def test_more_arrays_that_cannot_travel_are_refused_by_name(
+    name: str, value: np.ndarray, fragment: str
+) -> None:
+    atoms = molecule("H2O")
+    atoms.arrays[name] = value  # past ASE's own checks, as code that edits arrays can
+    with pytest.raises(StructureError) as caught:
+        Structure.from_atoms(atoms)
+    assert f"atoms.arrays[{name!r}]" in str(caught.value)
+    assert fragment in str(caught.value)
+
+
 # -- malformed structures: pydantic ValidationError naming the problem -----------------
 def cu_dimer(**overrides: Any) -> dict[str, Any]:
     body: dict[str, Any] = {"numbers": [29, 29], "positions": [[0, 0, 0], [2.5, 0, 0]]}
@@ -400,6 +570,79 @@ def cu_dimer(**overrides: Any) -> dict[str, Any]:
         ({"constraints": [{"type": "FixBondLength", "indices": [0, 1]}]}, "FixBondLength"),
         ({"positions": [[0, 0, 0], [1, 2]]}, "positions.1"),
         ({"colour": "blue"}, "colour"),
+        # what the service receives for the newer fields is checked by the model too
+        ({"masses": [63.546]}, "masses has 1 entries but there are 2 atoms"),
+        ({"masses": [63.546, 0.0]}, "mass of atom 1 (Cu) is 0.0"),
+        ({"masses": [math.nan, 63.546]}, "mass of atom 0 (Cu) is nan"),
+        (
+            {"arrays": {"x": {"dtype": "float64", "shape": [3], "values": [0.0, 0.0, 0.0]}}},
+            "per-atom array 'x' has shape (3,) but there are 2 atoms",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "float64", "shape": [2, 2], "values": [0.0, 1.0, 2.0]}}},
+            "per-atom array 'x' has shape (2, 2) but 3 values",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "float64", "shape": [2], "values": [0.0, math.inf]}}},
+            "per-atom array 'x' is inf at atom 1",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "int32", "shape": [2], "values": [0, 2**31]}}},
+            "holds 2147483648, which does not fit int32",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "bool", "shape": [2], "values": [1, 0]}}},
+            "arrays.x.bool.values.0",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "str", "width": 1, "shape": [2], "values": ["ab", "c"]}}},
+            "holds 'ab', longer than its width 1",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "complex128", "shape": [2], "values": [0.0, 1.0]}}},
+            "complex128",
+        ),
+        (
+            {"arrays": {"x": {"dtype": "float64", "shape": [2, 1, 1], "values": [0.0, 1.0]}}},
+            "reshape it to (natoms,) or (natoms, k)",
+        ),
+        (
+            {"arrays": {"masses": {"dtype": "float64", "shape": [2], "values": [1.0, 2.0]}}},
+            "travels in the structure's field 'masses'",
+        ),
+        (
+            {"arrays": {"a b": {"dtype": "bool", "shape": [2], "values": [True, False]}}},
+            "is not a plain name",
+        ),
+        (
+            {"constraints": [{"type": "FixBondLengths", "pairs": [[0, 2]]}]},
+            "FixBondLengths names atom index 2, but there are 2 atoms",
+        ),
+        (
+            {"constraints": [{"type": "FixBondLengths", "pairs": [[1, 1]]}]},
+            "pair (1, 1) names one atom twice",
+        ),
+        (
+            {"constraints": [{"type": "FixBondLengths", "pairs": [[0, 1]], "bondlengths": []}]},
+            "has 0 bond lengths for 1 pairs",
+        ),
+        (
+            {"constraints": [{"type": "FixBondLengths", "pairs": [[0, 1]], "tolerance": -1.0}]},
+            "tolerance -1.0 must be a finite number >= 0",
+        ),
+        (
+            {"constraints": [{"type": "FixedPlane", "indices": [0], "direction": [0, 0, 0]}]},
+            "FixedPlane direction [0.0, 0.0, 0.0] is not a direction",
+        ),
+        (
+            {"constraints": [{"type": "FixedLine", "indices": [5], "direction": [1, 0, 0]}]},
+            "FixedLine names atom index 5, but there are 2 atoms",
+        ),
+        (
+            {"constraints": [{"type": "FixSubsetCom", "indices": [0, 0]}]},
+            "FixSubsetCom lists atom 0 twice",
+        ),
+        ({"constraints": [{"type": "FixCom", "indices": [0]}]}, "constraints.0.FixCom.indices"),
     ],
     ids=lambda value: value if isinstance(value, str) else None,
 )
