@@ -131,3 +131,18 @@ def postgres_url() -> Iterator[str]:
     yield f"{base}/{name}"
     with psycopg.connect(admin, autocommit=True) as conn:
         conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+@pytest.fixture
+def fresh_postgres(postgres_url: str) -> Iterator[str]:
+    """A PostgreSQL database of this test's own, dropped after it: the session's
+    postgres_url is shared, so a test that counts rows must not see another test's."""
+    import psycopg
+
+    admin = postgres_url.replace("postgresql+psycopg://", "postgresql://")
+    name = f"atomq_own_{uuid.uuid4().hex[:12]}"
+    with psycopg.connect(admin, autocommit=True) as connection:
+        connection.execute(f'CREATE DATABASE "{name}"')
+    yield f"{postgres_url.rsplit('/', 1)[0]}/{name}"
+    with psycopg.connect(admin, autocommit=True) as connection:
+        connection.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')

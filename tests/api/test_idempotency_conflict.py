@@ -169,7 +169,7 @@ def engine(request: pytest.FixtureRequest, tmp_path: Any) -> Iterator[Engine]:
     if request.param == "sqlite":
         url = f"sqlite:///{tmp_path / 'atomq.db'}"
     else:
-        url = request.getfixturevalue("postgres_url")
+        url = request.getfixturevalue("fresh_postgres")
     engine = make_engine(url)
     prepare_schema(engine)
     seed_defaults(engine)

@@ -8,8 +8,6 @@ from __future__ import annotations
 
 import shutil
 import sqlite3
-import uuid
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -40,20 +38,6 @@ from atomq_service.users import add_user
 FIXTURE = Path(__file__).parents[1] / "fixtures" / "pre_migration"
 # What the fixture's script submitted first (tests/fixtures/pre_migration/make_fixture.py).
 CU = bulk("Cu", "fcc", a=3.62, cubic=True)
-
-
-@pytest.fixture
-def fresh_postgres(postgres_url: str) -> Iterator[str]:
-    """A database of this test's own (the session's postgres_url is shared by tests)."""
-    import psycopg
-
-    admin = postgres_url.replace("postgresql+psycopg://", "postgresql://")
-    name = f"atomq_schema_{uuid.uuid4().hex[:12]}"
-    with psycopg.connect(admin, autocommit=True) as connection:
-        connection.execute(f'CREATE DATABASE "{name}"')
-    yield f"{postgres_url.rsplit('/', 1)[0]}/{name}"
-    with psycopg.connect(admin, autocommit=True) as connection:
-        connection.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
 
 
 @pytest.fixture

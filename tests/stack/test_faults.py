@@ -235,7 +235,7 @@ def test_nothing_lost_nothing_run_twice(
     url = (
         f"sqlite:///{tmp_path / 'atomq.db'}"
         if database == "sqlite"
-        else request.getfixturevalue("postgres_url")
+        else request.getfixturevalue("fresh_postgres")
     )
     engine = make_engine(url)
     prepare_schema(engine)
