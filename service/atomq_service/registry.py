@@ -206,8 +206,6 @@ def resolve(session: Session, reference: str) -> Calculator:
             f"unknown calculator {name!r}; registered calculators: {', '.join(sorted(known))}",
         )
     active = [c for c in versions if not c.retired]
-    default = default_version(session, name)
-    usable = default if default is not None and not default.retired else None
     if not version:
         if not active:
             raise ApiError(
@@ -222,6 +220,9 @@ def resolve(session: Session, reference: str) -> Calculator:
     for calculator in versions:
         if calculator.version == version:
             if calculator.retired:
+                # Only on this refusal: an exact version costs one query, as before.
+                default = default_version(session, name)
+                usable = default if default is not None and not default.retired else None
                 instead = usable or (active[0] if active else None)
                 newer = f"; use {instead.ref}" if instead is not None else ""
                 raise ApiError(
